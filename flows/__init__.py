@@ -1,0 +1,1 @@
+"""Prefect orchestration: thin flows and tasks over the ``pipeline`` stages."""

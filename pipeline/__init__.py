@@ -1,0 +1,1 @@
+"""Stages of the Tallywave data path: plain functions over a DuckDB connection."""

@@ -1,0 +1,231 @@
+"""The DuckDB warehouse: open the file, create the schemas and tables, migrate forward.
+
+Layers (design.md): ``raw.*`` is what arrived and is never edited, ``core.*`` is a pure transform
+of ``raw``, ``out.*`` holds one row set per published run.  The schema carries a version number in
+``core.schema_info``; :data:`MIGRATIONS` lists the forward steps, each applied once, in order.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
+from pathlib import Path
+
+import duckdb
+import pandas as pd
+
+from pipeline.errors import DatabaseBusy, UserError
+
+DEFAULT_DB = "tallywave.duckdb"
+
+_V1 = [
+    "CREATE SCHEMA IF NOT EXISTS raw",
+    "CREATE SCHEMA IF NOT EXISTS core",
+    "CREATE SCHEMA IF NOT EXISTS out",
+    "CREATE SEQUENCE IF NOT EXISTS raw.file_id_seq START 1",
+    """CREATE TABLE IF NOT EXISTS raw.feed_files (
+        file_id BIGINT PRIMARY KEY, source VARCHAR NOT NULL, path VARCHAR NOT NULL,
+        sha256 VARCHAR NOT NULL, as_of DATE, received_at TIMESTAMP NOT NULL,
+        rows_read BIGINT NOT NULL, rows_accepted BIGINT NOT NULL, rows_rejected BIGINT NOT NULL,
+        status VARCHAR NOT NULL, message VARCHAR)""",
+    """CREATE TABLE IF NOT EXISTS raw.rejected_rows (
+        file_id BIGINT NOT NULL, line_no BIGINT, content VARCHAR, reason VARCHAR NOT NULL)""",
+    """CREATE TABLE IF NOT EXISTS raw.reports (
+        file_id BIGINT NOT NULL, source VARCHAR NOT NULL, region VARCHAR NOT NULL,
+        signal VARCHAR NOT NULL, ref_date DATE NOT NULL, as_of DATE NOT NULL,
+        value DOUBLE NOT NULL, value_kind VARCHAR NOT NULL, line_no BIGINT)""",
+    """CREATE TABLE IF NOT EXISTS core.observations (
+        region VARCHAR NOT NULL, signal VARCHAR NOT NULL, ref_date DATE NOT NULL,
+        as_of DATE NOT NULL, value DOUBLE NOT NULL, file_id BIGINT)""",
+    """CREATE TABLE IF NOT EXISTS core.vintaged_files (file_id BIGINT PRIMARY KEY)""",
+    """CREATE TABLE IF NOT EXISTS core.cleaned (
+        run_id VARCHAR NOT NULL, region VARCHAR NOT NULL, signal VARCHAR NOT NULL,
+        ref_date DATE NOT NULL, value_reported DOUBLE, value_clean DOUBLE NOT NULL,
+        flag VARCHAR, value_adjusted DOUBLE)""",
+    """CREATE TABLE IF NOT EXISTS core.clean_actions (
+        run_id VARCHAR NOT NULL, region VARCHAR NOT NULL, signal VARCHAR NOT NULL,
+        ref_date DATE NOT NULL, action VARCHAR NOT NULL, delta DOUBLE NOT NULL,
+        detail VARCHAR)""",
+    """CREATE TABLE IF NOT EXISTS core.weekday_effects (
+        run_id VARCHAR NOT NULL, region VARCHAR NOT NULL, signal VARCHAR NOT NULL,
+        weekday INTEGER NOT NULL, weekday_name VARCHAR NOT NULL, effect DOUBLE NOT NULL)""",
+    """CREATE TABLE IF NOT EXISTS out.runs (
+        run_id VARCHAR PRIMARY KEY, as_of DATE NOT NULL, started_at TIMESTAMP NOT NULL,
+        finished_at TIMESTAMP, status VARCHAR NOT NULL, settings_json VARCHAR,
+        code_version VARCHAR, skipped_json VARCHAR, message VARCHAR)""",
+    """CREATE TABLE IF NOT EXISTS out.delay_pmf (
+        run_id VARCHAR NOT NULL, region VARCHAR NOT NULL, signal VARCHAR NOT NULL,
+        delay_days INTEGER NOT NULL, prob DOUBLE NOT NULL)""",
+    """CREATE TABLE IF NOT EXISTS out.delay_drift (
+        run_id VARCHAR NOT NULL, region VARCHAR NOT NULL, signal VARCHAR NOT NULL,
+        week_start DATE NOT NULL, mean_delay_days DOUBLE)""",
+    """CREATE TABLE IF NOT EXISTS out.nowcast (
+        run_id VARCHAR NOT NULL, region VARCHAR NOT NULL, signal VARCHAR NOT NULL,
+        ref_date DATE NOT NULL, reported DOUBLE, q_level DOUBLE NOT NULL, value DOUBLE NOT NULL)""",
+    """CREATE TABLE IF NOT EXISTS out.rt (
+        run_id VARCHAR NOT NULL, region VARCHAR NOT NULL, signal VARCHAR NOT NULL,
+        ref_date DATE NOT NULL, q_level DOUBLE NOT NULL, value DOUBLE NOT NULL,
+        mean DOUBLE, nowcast_dependent BOOLEAN)""",
+    """CREATE TABLE IF NOT EXISTS out.growth (
+        run_id VARCHAR NOT NULL, region VARCHAR NOT NULL, signal VARCHAR NOT NULL,
+        ref_date DATE NOT NULL, growth_rate DOUBLE, doubling_days DOUBLE, p_growing DOUBLE,
+        rt_mean DOUBLE, nowcast_dependent BOOLEAN)""",
+    """CREATE TABLE IF NOT EXISTS out.fits (
+        run_id VARCHAR NOT NULL, region VARCHAR NOT NULL, model VARCHAR NOT NULL,
+        params_json VARCHAR, objective DOUBLE, converged BOOLEAN, message VARCHAR,
+        signal VARCHAR)""",
+    """CREATE TABLE IF NOT EXISTS out.forecasts (
+        run_id VARCHAR NOT NULL, issued_on DATE NOT NULL, model VARCHAR NOT NULL,
+        region VARCHAR NOT NULL, signal VARCHAR NOT NULL, target_date DATE NOT NULL,
+        horizon_days INTEGER NOT NULL, q_level DOUBLE NOT NULL, value DOUBLE NOT NULL)""",
+    """CREATE TABLE IF NOT EXISTS out.scores (
+        run_id VARCHAR, issued_on DATE NOT NULL, model VARCHAR NOT NULL, region VARCHAR NOT NULL,
+        signal VARCHAR NOT NULL, target_date DATE NOT NULL, horizon_days INTEGER NOT NULL,
+        truth DOUBLE NOT NULL, truth_as_of DATE NOT NULL, wis DOUBLE NOT NULL,
+        dispersion DOUBLE, overprediction DOUBLE, underprediction DOUBLE,
+        abs_error DOUBLE, covered_50 BOOLEAN, covered_90 BOOLEAN, pit DOUBLE, bias DOUBLE,
+        scored_at TIMESTAMP)""",
+]
+
+_VIEWS = [
+    """CREATE OR REPLACE VIEW out.latest_forecasts AS
+       SELECT f.* FROM out.forecasts f
+       WHERE f.run_id = (SELECT run_id FROM out.runs WHERE status = 'published'
+                         ORDER BY as_of DESC, finished_at DESC LIMIT 1)""",
+]
+
+#: Forward migrations: (version, statements).  Append new steps; never edit a shipped one.
+MIGRATIONS: list[tuple[int, list[str]]] = [(1, _V1)]
+SCHEMA_VERSION = MIGRATIONS[-1][0]
+
+
+def db_path(path: str | os.PathLike | None = None) -> Path:
+    """Resolve the database path: explicit argument, else ``TALLYWAVE_DB``, else the default."""
+    return Path(path or os.environ.get("TALLYWAVE_DB") or DEFAULT_DB)
+
+
+def _connect(path: Path, read_only: bool, wait_s: float) -> duckdb.DuckDBPyConnection:
+    deadline = time.monotonic() + wait_s
+    while True:
+        try:
+            return duckdb.connect(str(path), read_only=read_only)
+        except duckdb.IOException as exc:
+            text = str(exc)
+            if "lock" not in text.lower():
+                raise UserError(f"{path}: cannot open database ({text.splitlines()[0]})") from exc
+            if time.monotonic() >= deadline:
+                raise DatabaseBusy(
+                    f"{path}: database in use by another tallywave process "
+                    f"(waited {wait_s:.0f} s); try again when it has finished"
+                ) from exc
+            time.sleep(0.5)
+
+
+def connect(
+    path: str | os.PathLike | None = None, *, read_only: bool = False, wait_s: float = 30.0
+) -> duckdb.DuckDBPyConnection:
+    """Open (and, for writers, create and migrate) the Tallywave database.
+
+    A second writer waits up to ``wait_s`` seconds for the file lock, then fails with a clear
+    "database in use" message instead of a traceback.
+    """
+    p = db_path(path)
+    if read_only:
+        if not p.exists():
+            raise UserError(f"{p}: no such database (run `tallywave demo` or `tallywave ingest`)")
+        return _connect(p, True, wait_s)
+    if p.parent and not p.parent.exists():
+        raise UserError(f"{p}: folder {p.parent} does not exist")
+    con = _connect(p, False, wait_s)
+    migrate(con)
+    return con
+
+
+def memory() -> duckdb.DuckDBPyConnection:
+    """An in-memory database with the full schema (tests, benchmarks)."""
+    con = duckdb.connect(":memory:")
+    migrate(con)
+    return con
+
+
+def schema_version(con: duckdb.DuckDBPyConnection) -> int:
+    """The schema version recorded in the database (0 for an empty file)."""
+    exists = con.execute(
+        "SELECT count(*) FROM information_schema.tables "
+        "WHERE table_schema = 'core' AND table_name = 'schema_info'"
+    ).fetchall()[0][0]
+    if not exists:
+        return 0
+    v = con.execute("SELECT max(version) FROM core.schema_info").fetchall()[0][0]
+    return int(v or 0)
+
+
+def migrate(con: duckdb.DuckDBPyConnection) -> int:
+    """Apply every migration newer than the database's version, each in its own transaction."""
+    con.execute("CREATE SCHEMA IF NOT EXISTS core")
+    con.execute(
+        "CREATE TABLE IF NOT EXISTS core.schema_info (version INTEGER, applied_at TIMESTAMP)"
+    )
+    current = schema_version(con)
+    if current > SCHEMA_VERSION:
+        raise UserError(
+            f"database schema version {current} is newer than this tallywave ({SCHEMA_VERSION}); "
+            "upgrade tallywave"
+        )
+    for version, statements in MIGRATIONS:
+        if version <= current:
+            continue
+        with transaction(con):
+            for stmt in statements:
+                con.execute(stmt)
+            con.execute("INSERT INTO core.schema_info VALUES (?, now())", [version])
+    for stmt in _VIEWS + _accuracy_views():
+        con.execute(stmt)
+    return SCHEMA_VERSION
+
+
+@contextmanager
+def transaction(con: duckdb.DuckDBPyConnection) -> Iterator[duckdb.DuckDBPyConnection]:
+    """All-or-nothing block: commit on success, roll back on any exception."""
+    con.execute("BEGIN TRANSACTION")
+    try:
+        yield con
+    except BaseException:
+        con.execute("ROLLBACK")
+        raise
+    else:
+        con.execute("COMMIT")
+
+
+def insert_df(con: duckdb.DuckDBPyConnection, table: str, df: pd.DataFrame) -> int:
+    """Append a DataFrame to ``table`` by column name (one vectorised insert, no row loop)."""
+    if df is None or len(df) == 0:
+        return 0
+    name = f"_ins_{abs(hash(table))}"
+    con.register(name, df)
+    try:
+        cols = ", ".join(f'"{c}"' for c in df.columns)
+        con.execute(f"INSERT INTO {table} ({cols}) SELECT {cols} FROM {name}")
+    finally:
+        con.unregister(name)
+    return len(df)
+
+
+def table_names(con: duckdb.DuckDBPyConnection) -> list[str]:
+    """Qualified names of all Tallywave tables and views."""
+    rows = con.execute(
+        "SELECT table_schema || '.' || table_name FROM information_schema.tables "
+        "WHERE table_schema IN ('raw', 'core', 'out') ORDER BY 1"
+    ).fetchall()
+    return [r[0] for r in rows]
+
+
+def _accuracy_views() -> list[str]:
+    # Imported lazily: the scoring stage owns the accuracy definitions.
+    try:
+        from pipeline.scoring import ACCURACY_VIEWS
+    except ImportError:  # pragma: no cover - during early bootstrap only
+        return []
+    return list(ACCURACY_VIEWS)
