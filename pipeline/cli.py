@@ -42,14 +42,14 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--feeds", default=DEMO_DIR, help="demo feed folder (default sample_feeds)")
     d.add_argument("--days", type=int, default=21, help="as-of dates to backfill (default 21)")
     d.add_argument("--settings", help="settings TOML")
-    d.add_argument("--runner", default="local", choices=["local", "dask"])
+    d.add_argument("--runner", default="local", choices=["local", "threads", "processes", "dask"])
 
     s = sub.add_parser("simulate", help="write a synthetic scenario's feeds and truth")
     s.add_argument("--out", default=DEMO_DIR, help="output folder (default sample_feeds)")
     s.add_argument("--regions", type=int, default=10)
     s.add_argument("--days", type=int, default=200)
-    s.add_argument("--snapshots", type=int, default=60)
-    s.add_argument("--window", type=int, default=42, help="ref dates per daily snapshot")
+    s.add_argument("--snapshots", type=int, default=90, help="daily snapshots (default 90)")
+    s.add_argument("--window", type=int, default=35, help="ref dates per snapshot (default 35)")
     s.add_argument("--seed", type=int, default=20260302)
     s.add_argument("--start", type=_date, default=dt.date(2026, 3, 2))
 
@@ -61,7 +61,7 @@ def build_parser() -> argparse.ArgumentParser:
         r.add_argument("--as-of", type=_date, default=None, help="default: today")
         r.add_argument("--settings")
         r.add_argument("--spec", action="append", default=[], help="feed spec(s) to ingest first")
-        r.add_argument("--runner", default="local", choices=["local", "dask"])
+        r.add_argument("--runner", default="local", choices=["local", "threads", "processes", "dask"])
         r.add_argument("--address", help="existing Dask scheduler, tcp://host:port")
         r.add_argument("--no-report", action="store_true", help="skip the HTML report")
 
@@ -69,7 +69,7 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--start", type=_date, required=True)
     b.add_argument("--end", type=_date, required=True)
     b.add_argument("--settings")
-    b.add_argument("--runner", default="local", choices=["local", "dask"])
+    b.add_argument("--runner", default="local", choices=["local", "threads", "processes", "dask"])
     b.add_argument("--address", help="existing Dask scheduler, tcp://host:port")
 
     sc = sub.add_parser("score", help="score every published forecast against the data now known")
@@ -93,7 +93,7 @@ def build_parser() -> argparse.ArgumentParser:
     sv.add_argument("--timezone", default="UTC")
     sv.add_argument("--spec", action="append", default=[], help="feed spec(s) to ingest")
     sv.add_argument("--settings")
-    sv.add_argument("--runner", default="local", choices=["local", "dask"])
+    sv.add_argument("--runner", default="local", choices=["local", "threads", "processes", "dask"])
     sv.add_argument("--address")
 
     cl = sub.add_parser("clean", help="run only the cleaning stage for one as-of date (no run)")
@@ -110,7 +110,7 @@ def cmd_simulate(args: argparse.Namespace) -> int:
     info = write_scenario(args.out, n_regions=args.regions, n_days=args.days,
                           n_snapshots=args.snapshots, window=args.window, seed=args.seed,
                           start=args.start.isoformat())
-    print(f"wrote scenario to {args.out}: {info.get('files', '?')} files, "
+    print(f"wrote scenario to {args.out}: {info.get('n_files', '?')} files, "
           f"{info.get('bytes', 0) / 1e6:.1f} MB (feed spec {Path(args.out) / DEMO_SPEC})")
     return 0
 

@@ -61,6 +61,11 @@ signal = "deaths"
 value_kind = "daily"
 as_of = { from = "column", column = "published" }
 columns = { region = "district", ref_date = "date", value = "deaths" }
+
+# District sizes (the compartmental model needs each region's population).
+[regions]
+path = "regions.csv"
+columns = { region = "district", population = "population" }
 """
 
 _STR = np.dtypes.StringDType()
@@ -77,6 +82,7 @@ def _clear_previous(out: Path) -> None:
     for name in _TRUTH_FILES:
         (out / "truth" / name).unlink(missing_ok=True)
     (out / "feeds.toml").unlink(missing_ok=True)
+    (out / "regions.csv").unlink(missing_ok=True)
 
 
 def _grid_text(prefix: np.ndarray, values: np.ndarray, suffix: str, keep: np.ndarray | None) -> str:
@@ -171,6 +177,9 @@ def write_scenario(
 
     feed_bytes += _write(out / "feeds.toml", FEEDS_TOML)
     files.append("feeds.toml")
+    feed_bytes += _write(out / "regions.csv", "district,population\n" + "".join(
+        f"{name},{int(pop)}\n" for name, pop in zip(sc.names, sc.populations)))
+    files.append("regions.csv")
     truth_rows = _write_truth(out / "truth", sc, days, start_date)
     files += [f"truth/{name}" for name in _TRUTH_FILES]
     rows.update(truth_rows)

@@ -39,6 +39,8 @@ _V1 = [
     """CREATE TABLE IF NOT EXISTS core.observations (
         region VARCHAR NOT NULL, signal VARCHAR NOT NULL, ref_date DATE NOT NULL,
         as_of DATE NOT NULL, value DOUBLE NOT NULL, file_id BIGINT)""",
+    """CREATE TABLE IF NOT EXISTS core.regions (
+        region VARCHAR PRIMARY KEY, population DOUBLE, file_id BIGINT)""",
     """CREATE TABLE IF NOT EXISTS core.vintaged_files (file_id BIGINT PRIMARY KEY)""",
     """CREATE TABLE IF NOT EXISTS core.cleaned (
         run_id VARCHAR NOT NULL, region VARCHAR NOT NULL, signal VARCHAR NOT NULL,

@@ -1,0 +1,104 @@
+"""Stage 3 — clean: series known on as_of → ``core.cleaned``, ``core.clean_actions``,
+``core.weekday_effects``.
+
+Reporting artefacts (negative corrections, missing days, zero runs with a catch-up day, backlog
+dumps) are repaired without changing any series' total, and every change is logged with a
+sentence a person can read.  ``raw.*`` and ``core.observations`` are never edited.
+Mathematics: :mod:`models.artefacts`.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from typing import Any
+
+import duckdb
+import numpy as np
+import pandas as pd
+
+from models.artefacts import ReportingRepair
+from pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map, to_blocks
+from pipeline.settings import Settings
+from pipeline.store import insert_df
+from pipeline.vintages import observations_as_of
+
+WEEKDAYS = ["Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday"]
+
+
+def repair_params(cfg: dict[str, Any]) -> dict[str, Any]:
+    """Map the documented settings onto the repair model's keyword parameters."""
+    return {
+        "negative_window": int(cfg["clean_negative_window_days"]),
+        "backlog_z": float(cfg["clean_dump_threshold"]),
+        "backlog_min_excess": float(cfg["clean_dump_min_excess"]),
+        "backlog_window": int(cfg["clean_dump_spread_days"]),
+        "level_window": int(cfg["clean_baseline_days"]),
+        "weekday_weeks": int(cfg["clean_weekday_weeks"]),
+    }
+
+
+def _repair_block(args: tuple[SeriesBlock, dict[str, Any]]) -> dict[str, Any]:
+    """Repair one batch of regions (pure; runs inside a task)."""
+    block, params = args
+    res = ReportingRepair(**params).fit(block.values, block.dates).result()
+    return {"clean": res.clean, "flag": res.flag, "adjusted": res.adjusted,
+            "weekday": res.weekday_effect, "actions": res.actions}
+
+
+def clean(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, *,
+          run_id: str, mapper: Mapper = serial_map) -> dict[str, Any]:
+    """Repair every (region, signal) series known on ``as_of`` and write the audit trail."""
+    obs = observations_as_of(con, as_of)
+    blocks = to_blocks(obs, end=as_of)
+    n_actions, n_series, lines, skipped = 0, 0, [], []
+    for signal, block in blocks.items():
+        cfg = settings.for_signal(signal)
+        params = repair_params(cfg)
+        parts = batches(len(block.regions), int(cfg["batch_regions"]))
+        results = mapper(_repair_block, [(block.take(s), params) for s in parts])
+        for part, res in zip(parts, results):
+            sub = block.take(part)
+            if isinstance(res, BatchFailure):
+                skipped.extend(f"{signal}/{r}" for r in sub.regions)
+                continue
+            df = sub.long("value_reported")
+            df["value_clean"] = res["clean"].reshape(-1)
+            df["flag"] = [f or None for f in np.asarray(res["flag"], dtype=object).reshape(-1)]
+            df["value_adjusted"] = res["adjusted"].reshape(-1)
+            df.insert(0, "run_id", run_id)
+            insert_df(con, "core.cleaned", df)
+            n_series += len(sub.regions)
+            acts = res["actions"]
+            if len(acts):
+                a = pd.DataFrame({
+                    "run_id": run_id,
+                    "region": sub.regions[acts["series"].to_numpy(dtype=int)],
+                    "signal": signal,
+                    "ref_date": sub.dates[acts["t"].to_numpy(dtype=int)],
+                    "action": acts["action"].to_numpy(),
+                    "delta": acts["delta"].to_numpy(dtype=float),
+                    "detail": acts["detail"].to_numpy(),
+                })
+                n_actions += insert_df(con, "core.clean_actions", a)
+            wk = np.asarray(res["weekday"])
+            insert_df(con, "core.weekday_effects", pd.DataFrame({
+                "run_id": run_id, "region": np.repeat(sub.regions, 7), "signal": signal,
+                "weekday": np.tile(np.arange(7), len(sub.regions)),
+                "weekday_name": np.tile(WEEKDAYS, len(sub.regions)),
+                "effect": wk.reshape(-1)}))
+        lines.append(f"{signal} {len(block.regions)} regions")
+    out = {"line": f"{n_series} series repaired, {n_actions} actions logged "
+                   f"({', '.join(lines) or 'no signals'})",
+           "series": n_series, "actions": n_actions}
+    if skipped:
+        out["skipped"] = skipped
+    return out
+
+
+def cleaned_blocks(con: duckdb.DuckDBPyConnection, run_id: str, *,
+                   adjusted: bool = False) -> dict[str, SeriesBlock]:
+    """This run's cleaned series per signal (the input of the later stages)."""
+    col = "value_adjusted" if adjusted else "value_clean"
+    df = con.execute(f"SELECT region, signal, ref_date, {col} AS value FROM core.cleaned "
+                     "WHERE run_id = ? ORDER BY signal, region, ref_date", [run_id]).df()
+    return to_blocks(df)

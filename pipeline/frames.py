@@ -1,0 +1,111 @@
+"""Shape long tables into the dense arrays the models work on, and back.
+
+Stages read long tables (region, signal, ref_date, value) and the models want one array per
+signal, ``(n_regions, n_days)``.  These helpers do that reshaping once, vectorised, so every stage
+shares one definition of "the series of a signal".
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections.abc import Callable, Iterable, Sequence
+from dataclasses import dataclass
+from typing import Any, TypeVar
+
+import numpy as np
+import pandas as pd
+
+T = TypeVar("T")
+R = TypeVar("R")
+
+#: ``mapper(fn, items)`` runs ``fn`` on each item and returns the results in order.  Stages fan
+#: per-region work out through it: the default runs in-process, the Prefect flows pass a mapper
+#: that submits tasks to their task runner (threads or Dask).
+Mapper = Callable[[Callable[[T], R], Sequence[T]], list[R]]
+
+
+@dataclass
+class BatchFailure:
+    """Stands in for the result of a batch that raised: its regions are skipped and recorded."""
+
+    message: str
+
+
+def serial_map(fn: Callable[[T], R], items: Sequence[T]) -> list[R | BatchFailure]:
+    """The default mapper: an in-process loop; a batch that raises becomes a BatchFailure."""
+    out: list[R | BatchFailure] = []
+    for x in items:
+        try:
+            out.append(fn(x))
+        except Exception as exc:  # noqa: BLE001 - a bad batch is recorded as skipped
+            out.append(BatchFailure(f"{type(exc).__name__}: {exc}"))
+    return out
+
+
+@dataclass
+class SeriesBlock:
+    """One signal's daily series for many regions on a common date axis."""
+
+    signal: str
+    regions: np.ndarray  # (n,) region names
+    dates: np.ndarray  # (T,) datetime64[D]
+    values: np.ndarray  # (n, T) float, NaN where no value is known
+
+    def take(self, idx: np.ndarray | slice) -> SeriesBlock:
+        """A block with a subset of regions (for batching)."""
+        return SeriesBlock(self.signal, self.regions[idx], self.dates, self.values[idx])
+
+    def long(self, value_name: str = "value", values: np.ndarray | None = None) -> pd.DataFrame:
+        """Back to a long table (region, signal, ref_date, value_name)."""
+        v = self.values if values is None else values
+        n, t = v.shape
+        return pd.DataFrame({
+            "region": np.repeat(self.regions, t),
+            "signal": self.signal,
+            "ref_date": np.tile(self.dates, n).astype("datetime64[D]"),
+            value_name: v.reshape(-1),
+        })
+
+
+def to_blocks(df: pd.DataFrame, *, value: str = "value", end: dt.date | None = None,
+              start: dt.date | None = None) -> dict[str, SeriesBlock]:
+    """Pivot a long table into one :class:`SeriesBlock` per signal (dates contiguous)."""
+    out: dict[str, SeriesBlock] = {}
+    if df.empty:
+        return out
+    for signal, g in df.groupby("signal", sort=True):
+        d = g["ref_date"].to_numpy().astype("datetime64[D]")
+        lo = np.datetime64(start, "D") if start is not None else d.min()
+        hi = np.datetime64(end, "D") if end is not None else d.max()
+        keep = (d >= lo) & (d <= hi)
+        regions, r_idx = np.unique(g["region"].to_numpy()[keep].astype(str), return_inverse=True)
+        t_idx = (d[keep] - lo).astype(int)
+        dates = np.arange(lo, hi + np.timedelta64(1, "D"), dtype="datetime64[D]")
+        vals = np.full((len(regions), len(dates)), np.nan)
+        vals[r_idx, t_idx] = g[value].to_numpy(dtype=float)[keep]
+        out[str(signal)] = SeriesBlock(str(signal), regions, dates, vals)
+    return out
+
+
+def batches(n: int, size: int) -> list[slice]:
+    """Contiguous slices of ``size`` regions (the unit of fan-out)."""
+    size = max(1, int(size))
+    return [slice(i, min(i + size, n)) for i in range(0, n, size)]
+
+
+def quantile_long(regions: np.ndarray, signal: str, dates: np.ndarray, q_levels: Iterable[float],
+                  q_values: np.ndarray, **extra: Any) -> pd.DataFrame:
+    """Long quantile table from an array (n_regions, n_dates, n_q)."""
+    q = np.asarray(list(q_levels), dtype=float)
+    n, t, k = q_values.shape
+    df = pd.DataFrame({
+        "region": np.repeat(regions, t * k),
+        "signal": signal,
+        "ref_date": np.tile(np.repeat(dates.astype("datetime64[D]"), k), n),
+        "q_level": np.tile(q, n * t),
+        "value": q_values.reshape(-1),
+    })
+    for key, val in extra.items():
+        arr = np.asarray(val)
+        df[key] = np.repeat(arr.reshape(-1), k) if arr.shape == (n, t) else val
+    return df

@@ -1,0 +1,202 @@
+"""Stage 4 — nowcast: vintages → reporting triangle → delay pmf → eventual counts with intervals.
+
+Reads ``core.observations`` (only vintages with ``as_of <= as_of``) and writes ``out.delay_pmf``,
+``out.delay_drift``, ``out.nowcast`` and one ``out.fits`` row per region × signal (model
+``nowcast``) saying whether the region's own delay distribution or a pooled one was used.
+Mathematics: :mod:`models.delay`.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+from dataclasses import dataclass
+from typing import Any
+
+import duckdb
+import numpy as np
+import pandas as pd
+
+from models.delay import ChainLadder, DelayGLM, DelayNowcaster, mean_delay_by_week
+from pipeline.frames import Mapper, serial_map
+from pipeline.settings import Settings
+from pipeline.store import insert_df
+from pipeline.vintages import vintages_as_of
+
+NOWCAST_LEVELS = [0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975]
+
+
+@dataclass
+class Triangle:
+    """Reporting triangle of one signal: ``cells[s, t, d]`` = events of ref date t reported at
+    delay d (NaN where not observable on as_of or before the first snapshot)."""
+
+    signal: str
+    regions: np.ndarray
+    dates: np.ndarray  # (n_ref,) datetime64[D]
+    cells: np.ndarray  # (n_regions, n_ref, D+1)
+    latest: np.ndarray  # (n_regions, n_ref) value known on as_of (all delays, incl. > D)
+
+
+def build_triangles(vintages: pd.DataFrame, as_of: dt.date, max_delay: int, n_ref: int,
+                    first_as_of: dict[str, dt.date]) -> dict[str, Triangle]:
+    """Turn vintage rows (region, signal, ref_date, as_of, value) into one triangle per signal.
+
+    The value of a ref date known at delay d is the last vintage with as_of <= ref_date + d; the
+    cell is its increment over delay d-1.  Reference dates before a signal's first snapshot were
+    never seen at small delays, so their rows are left unobserved (NaN) rather than guessed.
+    """
+    out: dict[str, Triangle] = {}
+    end = np.datetime64(as_of, "D")
+    start = end - np.timedelta64(n_ref - 1, "D")
+    dates = np.arange(start, end + np.timedelta64(1, "D"), dtype="datetime64[D]")
+    D = max_delay
+    for signal, g in vintages.groupby("signal", sort=True):
+        ref = g["ref_date"].to_numpy().astype("datetime64[D]")
+        keep = ref >= start
+        g = g[keep]
+        ref = ref[keep]
+        regions, r_idx = np.unique(g["region"].to_numpy().astype(str), return_inverse=True)
+        t_idx = (ref - start).astype(int)
+        delay = (g["as_of"].to_numpy().astype("datetime64[D]") - ref).astype(int)
+        vals = g["value"].to_numpy(dtype=float)
+        n = len(regions)
+        known = np.full((n, n_ref, D + 1), np.nan)
+        latest = np.full((n, n_ref), np.nan)
+        # rows are sorted by as_of within a key, so later writes win
+        order = np.lexsort((g["as_of"].to_numpy(), t_idx, r_idx))
+        r_o, t_o, d_o, v_o = r_idx[order], t_idx[order], delay[order], vals[order]
+        latest[r_o, t_o] = v_o
+        in_tri = d_o <= D
+        known[r_o[in_tri], t_o[in_tri], np.maximum(d_o[in_tri], 0)] = v_o[in_tri]
+        # forward-fill along delay: the value stays until the next vintage changes it
+        idx = np.where(np.isnan(known), 0, np.arange(D + 1))
+        np.maximum.accumulate(idx, axis=2, out=idx)
+        filled = np.take_along_axis(known, idx, axis=2)
+        first_seen = ~np.isnan(known).all(axis=2)
+        # before the first report of a ref date its value is 0 (nothing reported yet)
+        filled = np.where(np.isnan(filled) & first_seen[..., None], 0.0, filled)
+        filled = np.where(np.isnan(filled), 0.0, filled)
+        cells = np.diff(filled, axis=2, prepend=0.0)
+        # not observable yet on as_of
+        t_grid = np.arange(n_ref)[:, None]
+        d_grid = np.arange(D + 1)[None, :]
+        unobservable = t_grid + d_grid > n_ref - 1
+        cells[:, unobservable] = np.nan
+        # reference dates before the first snapshot: never seen at small delays
+        fa = first_as_of.get(str(signal))
+        if fa is not None:
+            censored = dates < np.datetime64(fa, "D")
+            cells[:, censored, :] = np.nan
+        latest = np.where(np.isnan(latest), 0.0, latest)
+        out[str(signal)] = Triangle(str(signal), regions, dates, cells, latest)
+    return out
+
+
+def _fit_block(args: tuple[Triangle, dict[str, Any], int]) -> dict[str, Any]:
+    """Fit the delay model and draw the nowcast for one batch of regions (pure; runs in tasks)."""
+    tri, cfg, seed = args
+    rng = np.random.default_rng(seed)
+    D = int(cfg["max_delay_days"])
+    if cfg["nowcast_method"] == "chain_ladder":
+        model: Any = ChainLadder(max_delay=D)
+    else:
+        weekday = int((tri.dates[0].astype("datetime64[D]").astype(int) + 3) % 7)  # Monday = 0
+        model = DelayGLM(family=cfg["nowcast_family"], weekday_effect=cfg["nowcast_weekday_effect"],
+                         first_ref_weekday=weekday, max_delay=D,
+                         pool_below=float(cfg["nowcast_pool_below"]))
+    nc = DelayNowcaster(model=model, family=cfg["nowcast_family"]).fit(tri.cells,
+                                                                      reported=tri.latest)
+    q = nc.quantiles(NOWCAST_LEVELS, n_draws=int(cfg["nowcast_draws"]), rng=rng)
+    weekly = mean_delay_by_week(tri.cells)
+    return {"pmf": nc.delay_pmf_, "q": q, "pooling": np.asarray(nc.pooling_, dtype=str),
+            "drift": (weekly.mean_delay, tri.dates[weekly.week_first_row])}
+
+
+def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, *,
+            run_id: str, mapper: Mapper = serial_map) -> dict[str, Any]:
+    """Estimate delay distributions and nowcast the last ``max_delay_days`` reference dates."""
+    firsts = {r[0]: r[1] for r in con.execute(
+        "SELECT signal, min(as_of) FROM core.observations WHERE as_of <= ? GROUP BY signal",
+        [as_of]).fetchall()}
+    n_written = 0
+    lines = []
+    for signal in sorted(firsts):
+        cfg = settings.for_signal(signal)
+        D = int(cfg["max_delay_days"])
+        n_ref = max(int(cfg["nowcast_training_days"]), D + 7)
+        since = as_of - dt.timedelta(days=n_ref - 1)
+        vint = vintages_as_of(con, as_of, since=since)
+        vint = vint[vint["signal"] == signal]
+        if vint.empty:
+            continue
+        tri = build_triangles(vint, as_of, D, n_ref, firsts)[signal]
+        from pipeline.frames import batches
+
+        parts = batches(len(tri.regions), int(cfg["batch_regions"]))
+        jobs = [(Triangle(signal, tri.regions[s], tri.dates, tri.cells[s], tri.latest[s]), cfg,
+                 int(cfg["seed"]) + i) for i, s in enumerate(parts)]
+        results = mapper(_fit_block, jobs)
+        pmf = np.concatenate([r["pmf"] for r in results])
+        q = np.concatenate([r["q"] for r in results])
+        pooling = np.concatenate([r["pooling"] for r in results])
+        drift_dates = results[0]["drift"][1]
+        drift = np.concatenate([r["drift"][0] for r in results])
+        n_reg = len(tri.regions)
+        # out.delay_pmf
+        insert_df(con, "out.delay_pmf", pd.DataFrame({
+            "run_id": run_id, "region": np.repeat(tri.regions, D + 1), "signal": signal,
+            "delay_days": np.tile(np.arange(D + 1), n_reg), "prob": pmf.reshape(-1)}))
+        # out.delay_drift
+        w = len(drift_dates)
+        insert_df(con, "out.delay_drift", pd.DataFrame({
+            "run_id": run_id, "region": np.repeat(tri.regions, w), "signal": signal,
+            "week_start": np.tile(np.asarray(drift_dates, dtype="datetime64[D]"), n_reg),
+            "mean_delay_days": drift.reshape(-1)}))
+        # out.nowcast: the last D+1 reference dates (older ones are complete)
+        keep = slice(n_ref - (D + 1), n_ref)
+        dates = tri.dates[keep]
+        qk = q[:, keep, :]
+        reported = tri.latest[:, keep]
+        # the nowcast never goes below what is already reported (incl. reports after delay D)
+        qk = np.maximum(qk, reported[..., None])
+        k = len(NOWCAST_LEVELS)
+        t = len(dates)
+        n_written += insert_df(con, "out.nowcast", pd.DataFrame({
+            "run_id": run_id, "region": np.repeat(tri.regions, t * k), "signal": signal,
+            "ref_date": np.tile(np.repeat(dates, k), n_reg),
+            "reported": np.repeat(reported.reshape(-1), k),
+            "q_level": np.tile(NOWCAST_LEVELS, n_reg * t), "value": qk.reshape(-1)}))
+        insert_df(con, "out.fits", pd.DataFrame({
+            "run_id": run_id, "region": tri.regions, "model": "nowcast",
+            "params_json": [json.dumps({"pooling": str(p), "method": cfg["nowcast_method"],
+                                        "family": cfg["nowcast_family"],
+                                        "mean_delay_days": float(np.sum(np.arange(D + 1) * row))})
+                            for p, row in zip(pooling, pmf)],
+            "objective": np.nan, "converged": True,
+            "message": [f"delay distribution: {p}" for p in pooling], "signal": signal}))
+        lines.append(f"{signal}: {n_reg} regions ({int(np.sum(pooling != 'own'))} pooled/shrunk)")
+    return {"line": "; ".join(lines) or "no signals", "rows": n_written}
+
+
+def corrected_series(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
+                     value: str = "value_clean") -> pd.DataFrame:
+    """Cleaned series with its last days scaled up by the nowcast (median and quantiles).
+
+    Returns long rows (region, ref_date, median, ratio_lo.., ...): for reference dates covered by
+    the nowcast the cleaned value is multiplied by nowcast_q / reported (the completion factor),
+    falling back to the nowcast itself where nothing was reported yet.
+    """
+    return con.execute(
+        f"""
+        SELECT c.region, c.ref_date, c.{value} AS value, n.q_level,
+               CASE WHEN n.q_level IS NULL THEN c.{value}
+                    WHEN n.reported > 0 THEN c.{value} * n.value / n.reported
+                    ELSE n.value END AS corrected
+        FROM core.cleaned c
+        LEFT JOIN out.nowcast n
+          ON n.run_id = c.run_id AND n.region = c.region AND n.signal = c.signal
+         AND n.ref_date = c.ref_date
+        WHERE c.run_id = ? AND c.signal = ?
+        ORDER BY c.region, c.ref_date, n.q_level
+        """, [run_id, signal]).df()

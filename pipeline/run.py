@@ -1,0 +1,146 @@
+"""One run = every stage for one as_of, published atomically, then scored.
+
+All outputs of a run (cleaned series, nowcast, Rt, growth, fits, forecasts) are written inside one
+DuckDB transaction and the ``out.runs`` row with status ``published`` is written last, inside the
+same transaction: a failed or killed run leaves nothing visible.  Re-running an as_of creates a
+new run and marks the earlier published run of that date ``superseded`` (history is kept, the
+views and scoring use the newest published run per as_of).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import subprocess
+import time
+import uuid
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import duckdb
+
+from pipeline.errors import RunFailed, UserError
+from pipeline.frames import Mapper, serial_map
+from pipeline.settings import Settings
+from pipeline.store import transaction
+
+Progress = Callable[[str], None]
+
+
+def code_version() -> str:
+    """Package version plus the git commit when running from a checkout."""
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        v = version("tallywave")
+    except PackageNotFoundError:  # pragma: no cover
+        v = "unknown"
+    try:
+        sha = subprocess.run(
+            ["git", "rev-parse", "--short", "HEAD"], cwd=Path(__file__).parent,
+            capture_output=True, text=True, timeout=5, check=False,
+        ).stdout.strip()
+    except (OSError, subprocess.SubprocessError):
+        sha = ""
+    return f"{v}+{sha}" if sha else v
+
+
+def new_run_id(as_of: dt.date) -> str:
+    """Readable, unique run id: the as_of date plus a random suffix."""
+    return f"{as_of.isoformat()}-{uuid.uuid4().hex[:8]}"
+
+
+def stages() -> list[tuple[str, Callable[..., dict]]]:
+    """The stages of a run, in order (imported lazily so the CLI starts fast)."""
+    from pipeline.clean import clean
+    from pipeline.forecast import forecast
+    from pipeline.nowcast import nowcast
+    from pipeline.transmission import transmission
+
+    return [("clean", clean), ("nowcast", nowcast), ("transmission", transmission),
+            ("forecast", forecast)]
+
+
+def _as_date(value: dt.date | str) -> dt.date:
+    if isinstance(value, dt.date):
+        return value
+    try:
+        return dt.date.fromisoformat(str(value))
+    except ValueError:
+        raise UserError(f"--as-of '{value}' is not a date (expected YYYY-MM-DD)") from None
+
+
+def execute_run(
+    con: duckdb.DuckDBPyConnection,
+    as_of: dt.date | str,
+    settings: Settings,
+    *,
+    mapper: Mapper = serial_map,
+    progress: Progress | None = None,
+    score_after: bool = True,
+    _fail_in: str | None = None,
+) -> dict[str, Any]:
+    """Run every stage for ``as_of`` in one transaction and publish it; then score.
+
+    ``_fail_in`` (tests only) raises inside the named stage to prove atomicity.
+    """
+    as_of = _as_date(as_of)
+    say = progress or (lambda _msg: None)
+    have = con.execute("SELECT count(*) FROM core.observations WHERE as_of <= ?",
+                       [as_of]).fetchall()[0][0]
+    if not have:
+        raise UserError(f"no data known on {as_of}: ingest feeds first (or pick a later --as-of)")
+    run_id = new_run_id(as_of)
+    started = dt.datetime.now()
+    summaries: dict[str, Any] = {}
+    t0 = time.perf_counter()
+    try:
+        with transaction(con):
+            for name, fn in stages():
+                t = time.perf_counter()
+                say(f"[{as_of}] {name} ...")
+                if _fail_in == name:
+                    raise RuntimeError(f"injected failure in stage {name}")
+                summaries[name] = fn(con, as_of, settings, run_id=run_id, mapper=mapper)
+                summaries[name]["seconds"] = round(time.perf_counter() - t, 3)
+                say(f"[{as_of}] {name}: {summaries[name].get('line', 'done')} "
+                    f"({summaries[name]['seconds']:.1f} s)")
+            skipped = {k: v.get("skipped") for k, v in summaries.items() if v.get("skipped")}
+            con.execute("UPDATE out.runs SET status = 'superseded' "
+                        "WHERE as_of = ? AND status = 'published'", [as_of])
+            con.execute(
+                "INSERT INTO out.runs VALUES (?, ?, ?, now(), 'published', ?, ?, ?, ?)",
+                [run_id, as_of, started, settings.to_json(), code_version(),
+                 json.dumps(skipped, default=str) if skipped else None,
+                 "; ".join(f"{k}: {v.get('line', '')}" for k, v in summaries.items())],
+            )
+    except (UserError, RunFailed):
+        _record_failure(con, run_id, as_of, started, settings, "stopped by a user error")
+        raise
+    except Exception as exc:
+        msg = f"{type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''}"
+        _record_failure(con, run_id, as_of, started, settings, msg)
+        raise RunFailed(f"run {run_id} failed, nothing published ({msg[:300]})") from exc
+    result = {"run_id": run_id, "as_of": as_of, "stages": summaries,
+              "seconds": round(time.perf_counter() - t0, 2)}
+    if score_after:
+        from pipeline.scoring import score
+
+        result["scoring"] = score(con, as_of, settings)
+        say(f"[{as_of}] scoring: {result['scoring']['line']}")
+    result["line"] = (f"published run {run_id} (as of {as_of}) in {result['seconds']:.1f} s: "
+                      + "; ".join(f"{k} {v.get('line', '')}" for k, v in summaries.items()))
+    return result
+
+
+def _record_failure(con: duckdb.DuckDBPyConnection, run_id: str, as_of: dt.date,
+                    started: dt.datetime, settings: Settings, message: str) -> None:
+    """Leave a trace of a failed run (no outputs) so the team sees it in ``out.runs``."""
+    try:
+        con.execute(
+            "INSERT INTO out.runs VALUES (?, ?, ?, now(), 'failed', ?, ?, NULL, ?)",
+            [run_id, as_of, started, settings.to_json(), code_version(), message[:1000]],
+        )
+    except duckdb.Error:  # pragma: no cover - the database itself is unusable
+        pass
