@@ -59,7 +59,7 @@ def clean(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, *,
         for part, res in zip(parts, results):
             sub = block.take(part)
             if isinstance(res, BatchFailure):
-                skipped.extend(f"{signal}/{r}" for r in sub.regions)
+                skipped.extend(f"{signal}/{r}: {res.message[:200]}" for r in sub.regions)
                 continue
             df = sub.long("value_reported")
             df["value_clean"] = res["clean"].reshape(-1)

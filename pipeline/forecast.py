@@ -48,7 +48,16 @@ def _baseline_job(args: tuple) -> np.ndarray:
     return m.quantiles(int(cfg["horizon_days"]), cfg["quantiles"])
 
 
+def _cori(cfg: dict[str, Any]) -> CoriEstimator:
+    mean, sd = float(cfg["rt_prior_mean"]), float(cfg["rt_prior_sd"])
+    return CoriEstimator(window=int(cfg["rt_window_days"]), prior_shape=(mean / sd) ** 2,
+                         prior_scale=sd ** 2 / mean, min_infections=float(cfg["rt_min_infections"]))
+
+
 def _renewal_job(args: tuple) -> dict[str, Any]:
+    """Renewal forecasts for one batch: R_t draws at the last day (mixed over nowcast draws)
+    projected forward; a region too small for its own R_t uses the R_t of the batch's regions
+    pooled (their summed incidence), and says so."""
     values, levels, q, rep, start, cfg, seed = args
     rng = np.random.default_rng(seed)
     t_keep = min(values.shape[1], RENEWAL_HISTORY_DAYS)
@@ -57,20 +66,23 @@ def _renewal_job(args: tuple) -> dict[str, Any]:
     n_draws = int(cfg["forecast_draws"])
     draws = incidence_draws(values, levels, q, rep, start - cut, n_draws, rng)
     pmfs = interval_pmfs(cfg)
-    mean, sd = float(cfg["rt_prior_mean"]), float(cfg["rt_prior_sd"])
-    est = CoriEstimator(window=int(cfg["rt_window_days"]), prior_shape=(mean / sd) ** 2,
-                        prior_scale=sd ** 2 / mean, min_infections=float(cfg["rt_min_infections"]))
-    est.fit_draws(draws, pmfs if len(pmfs) > 1 else pmfs[0])
-    r = est.sample(n_draws, day=-1, seed=seed)
-    ok = np.all(np.isfinite(r), axis=0)
+    interval = pmfs if len(pmfs) > 1 else pmfs[0]
+    r = _cori(cfg).fit_draws(draws, interval).sample(n_draws, day=-1, seed=seed)
+    own = np.all(np.isfinite(r), axis=0)
+    source = np.where(own, "own", "none").astype(object)
+    if not own.all():
+        pooled = _cori(cfg).fit_draws(draws.sum(axis=1, keepdims=True), interval)
+        rp = pooled.sample(n_draws, day=-1, seed=seed + 1)
+        if np.all(np.isfinite(rp)):
+            r[:, ~own] = rp
+            source[~own] = "pooled"
+    ok = source != "none"
     r = np.where(ok[None], r, 1.0)
-    fc = RenewalForecaster(horizon=int(cfg["horizon_days"]),
-                           log_r_sd=float(cfg["drift_sd"]),
+    fc = RenewalForecaster(horizon=int(cfg["horizon_days"]), log_r_sd=float(cfg["drift_sd"]),
                            dispersion=20.0, seed=seed)
-    fc.fit(draws, pmfs[0], r)
-    out = fc.quantiles(cfg["quantiles"])
+    out = fc.fit(draws, pmfs[0], r).quantiles(cfg["quantiles"])
     out[~ok] = np.nan
-    return {"q": out, "ok": ok}
+    return {"q": out, "source": source, "r_median": np.median(r, axis=0)}
 
 
 def _compartmental_job(args: tuple) -> dict[str, Any]:
@@ -167,6 +179,7 @@ def forecast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings,
             levels, q, rep, start = nq
             res = mapper(_renewal_job, [(np.nan_to_num(block.values[s]), levels, q[s], rep[s],
                                          start, cfg, seed + i) for i, s in enumerate(parts)])
+            _renewal_fits(con, run_id, signal, block, parts, res)
             res = [r if isinstance(r, BatchFailure) else r["q"] for r in res]
             results.setdefault("renewal", {})[signal] = _stack(res, parts, block, cfg,
                                                               skipped, "renewal", signal)
@@ -201,6 +214,28 @@ def forecast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings,
     return out
 
 
+def _renewal_fits(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
+                  block: SeriesBlock, parts: list[slice], res: list) -> None:
+    """One out.fits row per region: where the projected R_t came from."""
+    rows = []
+    for s, r in zip(parts, res):
+        if isinstance(r, BatchFailure):
+            continue
+        for region, src, med in zip(block.regions[s], r["source"], r["r_median"]):
+            msg = {"own": "R_t of the region itself",
+                   "pooled": "too few counts for its own R_t: R_t of the pooled regions used",
+                   "none": "too few counts, no renewal forecast"}[src]
+            rows.append((region, json.dumps({"r_source": src, "r_median": float(med)}),
+                         src != "none", msg))
+    if rows:
+        df = pd.DataFrame(rows, columns=["region", "params_json", "converged", "message"])
+        df.insert(0, "run_id", run_id)
+        df.insert(2, "model", "renewal")
+        df["objective"] = np.nan
+        df["signal"] = signal
+        insert_df(con, "out.fits", df)
+
+
 def _stack(res: list, parts: list[slice], block: SeriesBlock, cfg: dict, skipped: list[str],
            model: str, signal: str) -> np.ndarray:
     """Join batch results; failed batches become NaN and are recorded as skipped."""
@@ -208,7 +243,7 @@ def _stack(res: list, parts: list[slice], block: SeriesBlock, cfg: dict, skipped
     out = np.full((len(block.regions), h, k), np.nan)
     for s, r in zip(parts, res):
         if isinstance(r, BatchFailure):
-            skipped.extend(f"{model}/{signal}/{x}" for x in block.regions[s])
+            skipped.extend(f"{model}/{signal}/{x}: {r.message[:200]}" for x in block.regions[s])
         else:
             out[s] = r
     return out
@@ -248,7 +283,7 @@ def _run_compartmental(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings:
     for p, r in zip(parts, res):
         regs = regions[p]
         if isinstance(r, BatchFailure):
-            skipped.extend(f"compartmental/{x}" for x in regs)
+            skipped.extend(f"compartmental/{x}: {r.message[:200]}" for x in regs)
             fits.append(pd.DataFrame({"region": regs, "params_json": None,
                                       "objective": np.nan, "converged": False,
                                       "message": f"batch failed: {r.message[:300]}"}))

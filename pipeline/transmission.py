@@ -94,13 +94,21 @@ def incidence_draws(values: np.ndarray, levels: np.ndarray, q: np.ndarray, repor
          + np.sqrt(1 - NOWCAST_DAY_CORRELATION) * rng.standard_normal((m, n, t)))
     u = stats.norm.cdf(z)
     eventual = _quantile_draws(levels, np.nan_to_num(q), u)
-    rep = reported
     base = values[:, start:start + t]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        scaled = np.where(rep > 0, base * eventual / np.where(rep > 0, rep, 1.0), eventual)
+    scaled = _complete(base[None], eventual, reported[None])
     scaled = np.where(np.isnan(q[..., 0])[None], base[None], scaled)
     out[:, :, start:start + t] = scaled
     return out
+
+
+def _complete(base: np.ndarray, eventual: np.ndarray, reported: np.ndarray) -> np.ndarray:
+    """Apply the nowcast to a cleaned value: scale by eventual / reported where something was
+    reported, else add the expected unreported part; never negative."""
+    rep = np.nan_to_num(reported)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out = np.where(rep > 0, base * eventual / np.where(rep > 0, rep, 1.0),
+                       base + np.maximum(eventual - rep, 0.0))
+    return np.maximum(np.nan_to_num(out), 0.0)
 
 
 def median_corrected(values: np.ndarray, levels: np.ndarray, q: np.ndarray, reported: np.ndarray,
@@ -112,9 +120,7 @@ def median_corrected(values: np.ndarray, levels: np.ndarray, q: np.ndarray, repo
         return out
     med = q[..., int(np.argmin(np.abs(levels - 0.5)))]
     base = values[:, start:start + t]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        scaled = np.where(reported > 0, base * med / np.where(reported > 0, reported, 1.0), med)
-    out[:, start:start + t] = np.where(np.isnan(med), base, scaled)
+    out[:, start:start + t] = np.where(np.isnan(med), base, _complete(base, med, reported))
     return out
 
 
@@ -160,7 +166,7 @@ def transmission(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Setti
         for part, res in zip(parts, results):
             regions = block.regions[part]
             if isinstance(res, BatchFailure):
-                skipped.extend(f"{signal}/{r}" for r in regions)
+                skipped.extend(f"{signal}/{r}: {res.message[:200]}" for r in regions)
                 continue
             qs, mean = res["q"][:, t0:], res["mean"][:, t0:]
             ok = np.isfinite(mean)
