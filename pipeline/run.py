@@ -85,12 +85,19 @@ def execute_run(
 
     ``_fail_in`` (tests only) raises inside the named stage to prove atomicity.
     """
-    as_of = _as_date(as_of)
+    requested = _as_date(as_of)
     say = progress or (lambda _msg: None)
-    have = con.execute("SELECT count(*) FROM core.observations WHERE as_of <= ?",
-                       [as_of]).fetchall()[0][0]
-    if not have:
-        raise UserError(f"no data known on {as_of}: ingest feeds first (or pick a later --as-of)")
+    latest = con.execute("SELECT max(as_of) FROM core.observations WHERE as_of <= ?",
+                         [requested]).fetchall()[0][0]
+    if latest is None:
+        raise UserError(f"no data known on {requested}: ingest feeds first "
+                        "(or pick a later --as-of)")
+    # A run describes the newest data it has: when no feed published on the requested date, the
+    # run is made as of the latest snapshot (and says so) rather than inventing empty days.
+    as_of = min(requested, latest)
+    if as_of < requested:
+        say(f"no data published after {as_of}: running as of {as_of} "
+            f"({(requested - as_of).days} day(s) before {requested})")
     run_id = new_run_id(as_of)
     started = dt.datetime.now()
     summaries: dict[str, Any] = {}
