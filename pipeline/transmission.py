@@ -136,7 +136,8 @@ def _estimate_block(args: tuple) -> dict[str, Any]:
     draws = incidence_draws(values, levels, q, rep, start, RT_DRAWS, rng)
     est.fit_draws(draws, pmfs if len(pmfs) > 1 else pmfs[0])
     qs = est.quantiles(RT_LEVELS)
-    p_grow = est.prob_above(1.0)
+    # a mixture of posteriors can round to 1 + 1e-16: keep the probability in [0, 1]
+    p_grow = np.clip(est.prob_above(1.0), 0.0, 1.0)
     r_mean = est.mean_
     growth = growth_rate_from_r(r_mean, pmfs[0])
     return {"q": qs, "mean": r_mean, "p": p_grow, "growth": growth,
