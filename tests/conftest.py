@@ -6,6 +6,8 @@ import os
 
 import pytest
 
+# Small matrix products are faster single-threaded (and our batches already run in parallel).
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
 os.environ.setdefault("PREFECT_LOGGING_LEVEL", "WARNING")
 
