@@ -93,6 +93,27 @@ def build_triangles(vintages: pd.DataFrame, as_of: dt.date, max_delay: int, n_re
     return out
 
 
+def _mask_backlog_rows(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
+                       tri: Triangle) -> int:
+    """Leave backlog-dump days found by the clean stage out of the delay estimation.
+
+    A dump puts many days' late reports on one reference date at short delay; left in, it makes
+    reporting look faster than it is and the nowcast too low.  The rows stay in the reported
+    totals; only their cells are treated as unobserved while fitting.
+    """
+    rows = con.execute("SELECT DISTINCT region, ref_date FROM core.clean_actions "
+                       "WHERE run_id = ? AND signal = ? AND action = 'backlog_source'",
+                       [run_id, signal]).fetchall()
+    pos = {r: i for i, r in enumerate(tri.regions)}
+    n = 0
+    for region, ref_date in rows:
+        t = int((np.datetime64(ref_date, "D") - tri.dates[0]).astype(int))
+        if region in pos and 0 <= t < len(tri.dates):
+            tri.cells[pos[region], t, :] = np.nan
+            n += 1
+    return n
+
+
 def _fit_block(args: tuple[Triangle, dict[str, Any], int]) -> dict[str, Any]:
     """Fit the delay model and draw the nowcast for one batch of regions (pure; runs in tasks)."""
     tri, cfg, seed = args
@@ -131,6 +152,7 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
         if vint.empty:
             continue
         tri = build_triangles(vint, as_of, D, n_ref, firsts)[signal]
+        _mask_backlog_rows(con, run_id, signal, tri)
         from pipeline.frames import batches
 
         parts = batches(len(tri.regions), int(cfg["batch_regions"]))
