@@ -27,6 +27,24 @@ def _date(text: str) -> dt.date:
         raise argparse.ArgumentTypeError(f"'{text}' is not a date (expected YYYY-MM-DD)") from None
 
 
+def _seconds(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        value = float("nan")
+    if not value >= 0 or value == float("inf"):
+        raise argparse.ArgumentTypeError(f"'{text}' is not a number of seconds >= 0")
+    return value
+
+
+def _check_database(db: str | None) -> None:
+    """Open and close the database before Prefect starts: a busy or unusable file then fails
+    in one line (exit 3 / 2) instead of a flow traceback after the server start-up."""
+    from pipeline import store
+
+    store.connect(db).close()
+
+
 class _Parser(argparse.ArgumentParser):
     def error(self, message: str) -> None:  # one line, exit 2, like every other user error
         raise UserError(f"{self.prog}: {message}")
@@ -36,6 +54,9 @@ def build_parser() -> argparse.ArgumentParser:
     """The command-line grammar (verbs and options are a contract: see design.md)."""
     p = _Parser(prog="tallywave", description=__doc__.splitlines()[0])
     p.add_argument("--db", help="DuckDB file (default ./tallywave.duckdb or $TALLYWAVE_DB)")
+    p.add_argument("--wait", type=_seconds, default=None, metavar="SECONDS",
+                   help="how long to wait for a database another process is using, then exit 3 "
+                        "(default 30 or $TALLYWAVE_LOCK_WAIT)")
     sub = p.add_subparsers(dest="verb", required=True, parser_class=_Parser)
 
     d = sub.add_parser("demo", help="build the demo feeds if missing, ingest, backfill, report")
@@ -152,6 +173,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     from flows.daily import daily
 
     as_of = args.as_of or dt.date.today()
+    _check_database(args.db)
     result = daily(as_of=as_of.isoformat(), db=args.db, specs=args.spec, settings=args.settings,
                    runner=args.runner, address=args.address, report=not args.no_report)
     print(result["line"])
@@ -163,6 +185,7 @@ def cmd_backfill(args: argparse.Namespace) -> int:
 
     if args.end < args.start:
         raise UserError("--end is before --start")
+    _check_database(args.db)
     result = backfill(start=args.start.isoformat(), end=args.end.isoformat(), db=args.db,
                       settings=args.settings, runner=args.runner, address=args.address)
     print(result["line"])
@@ -239,6 +262,10 @@ def main(argv: list[str] | None = None) -> int:
     debug = os.environ.get("TALLYWAVE_DEBUG") == "1"
     try:
         args = build_parser().parse_args(argv)
+        if args.wait is not None:  # reaches every connection, the flows' included
+            from pipeline.store import LOCK_WAIT_ENV
+
+            os.environ[LOCK_WAIT_ENV] = repr(args.wait)
         return COMMANDS[args.verb](args)
     except (UserError, RunFailed) as exc:
         if debug:

@@ -7,7 +7,9 @@ of ``raw``, ``out.*`` holds one row set per published run.  The schema carries a
 
 from __future__ import annotations
 
+import math
 import os
+import re
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -108,6 +110,30 @@ def db_path(path: str | os.PathLike | None = None) -> Path:
     return Path(path or os.environ.get("TALLYWAVE_DB") or DEFAULT_DB)
 
 
+#: Environment variable with the seconds to wait for a database another process is using.
+LOCK_WAIT_ENV = "TALLYWAVE_LOCK_WAIT"
+DEFAULT_LOCK_WAIT_S = 30.0
+
+
+def lock_wait_seconds(wait_s: float | None = None) -> float:
+    """Seconds to wait for a lock another process holds.
+
+    ``wait_s`` if given, else ``$TALLYWAVE_LOCK_WAIT``, else 30 (the CLI's ``--wait`` sets it).
+    """
+    if wait_s is not None:
+        return max(0.0, float(wait_s))
+    text = os.environ.get(LOCK_WAIT_ENV, "").strip()
+    if not text:
+        return DEFAULT_LOCK_WAIT_S
+    try:
+        value = float(text)
+    except ValueError:
+        value = float("nan")
+    if not math.isfinite(value) or value < 0:
+        raise UserError(f"{LOCK_WAIT_ENV}='{text}' is not a number of seconds >= 0")
+    return value
+
+
 def _connect(path: Path, read_only: bool, wait_s: float) -> duckdb.DuckDBPyConnection:
     deadline = time.monotonic() + wait_s
     while True:
@@ -117,30 +143,36 @@ def _connect(path: Path, read_only: bool, wait_s: float) -> duckdb.DuckDBPyConne
             text = str(exc)
             if "lock" not in text.lower():
                 raise UserError(f"{path}: cannot open database ({text.splitlines()[0]})") from exc
-            if time.monotonic() >= deadline:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                pid = re.search(r"\(PID (\d+)\)", text)
+                holder = f" (PID {pid.group(1)})" if pid else ""
                 raise DatabaseBusy(
-                    f"{path}: database in use by another tallywave process "
-                    f"(waited {wait_s:.0f} s); try again when it has finished"
+                    f"{path}: database in use by another process{holder} "
+                    f"(waited {wait_s:g} s); try again when it has finished"
                 ) from exc
-            time.sleep(0.5)
+            time.sleep(min(0.25, left))
 
 
 def connect(
-    path: str | os.PathLike | None = None, *, read_only: bool = False, wait_s: float = 30.0
+    path: str | os.PathLike | None = None, *, read_only: bool = False,
+    wait_s: float | None = None,
 ) -> duckdb.DuckDBPyConnection:
     """Open (and, for writers, create and migrate) the Tallywave database.
 
-    A second writer waits up to ``wait_s`` seconds for the file lock, then fails with a clear
-    "database in use" message instead of a traceback.
+    DuckDB lets one process write a file, or several read it.  Opening a file another process
+    holds waits up to ``wait_s`` seconds (default :func:`lock_wait_seconds`) for the lock, then
+    fails with a one-line "database in use" message (:class:`DatabaseBusy`, exit code 3).
     """
     p = db_path(path)
+    wait = lock_wait_seconds(wait_s)
     if read_only:
         if not p.exists():
             raise UserError(f"{p}: no such database (run `tallywave demo` or `tallywave ingest`)")
-        return _connect(p, True, wait_s)
+        return _connect(p, True, wait)
     if p.parent and not p.parent.exists():
         raise UserError(f"{p}: folder {p.parent} does not exist")
-    con = _connect(p, False, wait_s)
+    con = _connect(p, False, wait)
     migrate(con)
     return con
 
