@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 
 from models.delay import ChainLadder, DelayGLM, DelayNowcaster, mean_delay_by_week
-from pipeline.frames import Mapper, serial_map
+from pipeline.frames import BatchFailure, Mapper, batches, serial_map
 from pipeline.settings import Settings
 from pipeline.store import insert_df
 from pipeline.vintages import vintages_as_of
@@ -141,7 +141,8 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
         "SELECT signal, min(as_of) FROM core.observations WHERE as_of <= ? GROUP BY signal",
         [as_of]).fetchall()}
     n_written = 0
-    lines = []
+    lines: list[str] = []
+    skipped: list[str] = []
     for signal in sorted(firsts):
         cfg = settings.for_signal(signal)
         D = int(cfg["max_delay_days"])
@@ -153,17 +154,24 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
             continue
         tri = build_triangles(vint, as_of, D, n_ref, firsts)[signal]
         _mask_backlog_rows(con, run_id, signal, tri)
-        from pipeline.frames import batches
-
         parts = batches(len(tri.regions), int(cfg["batch_regions"]))
         jobs = [(Triangle(signal, tri.regions[s], tri.dates, tri.cells[s], tri.latest[s]), cfg,
                  int(cfg["seed"]) + i) for i, s in enumerate(parts)]
         results = mapper(_fit_block, jobs)
-        pmf = np.concatenate([r["pmf"] for r in results])
-        q = np.concatenate([r["q"] for r in results])
-        pooling = np.concatenate([r["pooling"] for r in results])
-        drift_dates = results[0]["drift"][1]
-        drift = np.concatenate([r["drift"][0] for r in results])
+        good = [(s, r) for s, r in zip(parts, results) if not isinstance(r, BatchFailure)]
+        for s, r in zip(parts, results):
+            if isinstance(r, BatchFailure):
+                skipped.extend(f"{signal}/{x}: {r.message[:200]}" for x in tri.regions[s])
+        if not good:
+            continue
+        keep_rows = np.concatenate([np.arange(len(tri.regions))[s] for s, _ in good])
+        tri = Triangle(signal, tri.regions[keep_rows], tri.dates, tri.cells[keep_rows],
+                       tri.latest[keep_rows])
+        pmf = np.concatenate([r["pmf"] for _, r in good])
+        q = np.concatenate([r["q"] for _, r in good])
+        pooling = np.concatenate([r["pooling"] for _, r in good])
+        drift_dates = good[0][1]["drift"][1]
+        drift = np.concatenate([r["drift"][0] for _, r in good])
         n_reg = len(tri.regions)
         # out.delay_pmf
         insert_df(con, "out.delay_pmf", pd.DataFrame({
@@ -198,7 +206,10 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
             "objective": np.nan, "converged": True,
             "message": [f"delay distribution: {p}" for p in pooling], "signal": signal}))
         lines.append(f"{signal}: {n_reg} regions ({int(np.sum(pooling != 'own'))} pooled/shrunk)")
-    return {"line": "; ".join(lines) or "no signals", "rows": n_written}
+    out = {"line": "; ".join(lines) or "no signals", "rows": n_written}
+    if skipped:
+        out["skipped"] = skipped
+    return out
 
 
 def corrected_series(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
