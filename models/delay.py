@@ -700,7 +700,8 @@ class DelayNowcaster:
         delta -= 0.5 * np.diagonal(self.log_pmf_cov_[sl], axis1=1, axis2=2)[:, :, None]
         pmf = np.exp(delta, out=delta)
         pmf *= p[:, :, None]
-        pmf /= pmf.sum(axis=1, keepdims=True)
+        with np.errstate(invalid="ignore", divide="ignore"):  # an all-zero pmf stays NaN
+            pmf /= pmf.sum(axis=1, keepdims=True)
         return pmf
 
     def draw_delay_pmf(self, n_draws: int, rng: np.random.Generator | None = None) -> np.ndarray:

@@ -173,10 +173,16 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
         drift_dates = good[0][1]["drift"][1]
         drift = np.concatenate([r["drift"][0] for _, r in good])
         n_reg = len(tri.regions)
+        # Too little history (e.g. the first snapshot of a feed): no delay distribution can be
+        # estimated; say so, publish no pmf, and let the nowcast equal what is reported.
+        usable = np.isfinite(pmf).all(axis=1) & (np.nansum(pmf, axis=1) > 0.5)
+        pooling = np.where(usable, pooling, "insufficient")
+        q = np.where(usable[:, None, None] & np.isfinite(q), q, tri.latest[..., None])
         # out.delay_pmf
         insert_df(con, "out.delay_pmf", pd.DataFrame({
-            "run_id": run_id, "region": np.repeat(tri.regions, D + 1), "signal": signal,
-            "delay_days": np.tile(np.arange(D + 1), n_reg), "prob": pmf.reshape(-1)}))
+            "run_id": run_id, "region": np.repeat(tri.regions[usable], D + 1), "signal": signal,
+            "delay_days": np.tile(np.arange(D + 1), int(usable.sum())),
+            "prob": pmf[usable].reshape(-1)}))
         # out.delay_drift
         w = len(drift_dates)
         insert_df(con, "out.delay_drift", pd.DataFrame({
@@ -201,10 +207,13 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
             "run_id": run_id, "region": tri.regions, "model": "nowcast",
             "params_json": [json.dumps({"pooling": str(p), "method": cfg["nowcast_method"],
                                         "family": cfg["nowcast_family"],
-                                        "mean_delay_days": float(np.sum(np.arange(D + 1) * row))})
-                            for p, row in zip(pooling, pmf)],
-            "objective": np.nan, "converged": True,
-            "message": [f"delay distribution: {p}" for p in pooling], "signal": signal}))
+                                        "mean_delay_days": float(np.sum(np.arange(D + 1) * row))
+                                        if ok else None})
+                            for p, row, ok in zip(pooling, pmf, usable)],
+            "objective": np.nan, "converged": usable,
+            "message": [f"delay distribution: {p}" if ok else
+                        "too little reporting history to estimate delays; nowcast = reported"
+                        for p, ok in zip(pooling, usable)], "signal": signal}))
         lines.append(f"{signal}: {n_reg} regions ({int(np.sum(pooling != 'own'))} pooled/shrunk)")
     out = {"line": "; ".join(lines) or "no signals", "rows": n_written}
     if skipped:
