@@ -8,6 +8,7 @@ database nor read or write files, attach databases or load extensions.
 from __future__ import annotations
 
 import os
+import re
 from pathlib import Path
 
 import duckdb
@@ -17,6 +18,8 @@ from pipeline import store
 from pipeline.errors import UserError
 
 _ALLOWED = {"SELECT", "EXPLAIN"}
+_LEADING = re.compile(r"^(?:\s+|--[^\n]*(?:\n|$)|/\*.*?\*/)*", re.DOTALL)
+_EXPLAIN = re.compile(r"^EXPLAIN(?:\s+ANALY[SZ]E)?\b|^EXPLAIN\s*\([^)]*\)", re.IGNORECASE)
 
 
 def _locked(db: str | os.PathLike | None) -> duckdb.DuckDBPyConnection:
@@ -36,8 +39,16 @@ def check_read_only(con: duckdb.DuckDBPyConnection, sql: str) -> None:
         raise UserError("SQL is empty")
     for st in statements:
         kind = st.type.name
+        text = _LEADING.sub("", st.query).strip().rstrip(";")
+        if kind == "EXPLAIN":  # EXPLAIN [ANALYZE] runs or plans its inner statement: check it
+            inner = _EXPLAIN.sub("", text, count=1)
+            if inner.strip() and inner != text:
+                check_read_only(con, inner)
+                continue
         if kind not in _ALLOWED:
-            raise UserError(f"refused: {kind} statement; `tallywave sql` is read-only "
+            word = (re.findall(r"^[A-Za-z]+", text) or [kind])[0].upper()
+            name = kind if word == "WITH" else word  # INSTALL, CHECKPOINT, USE: their own word
+            raise UserError(f"refused: {name} statement; `tallywave sql` is read-only "
                             "(queries only)")
 
 
@@ -51,7 +62,10 @@ def read_only_query(db: str | os.PathLike | None, sql: str) -> pd.DataFrame:
         except duckdb.PermissionException as exc:
             raise UserError(f"refused: {str(exc).splitlines()[0]}") from exc
         except duckdb.Error as exc:
-            raise UserError(f"SQL error: {str(exc).splitlines()[0]}") from exc
+            first = str(exc).splitlines()[0] if str(exc).strip() else type(exc).__name__
+            if "read-only" in first:  # a write that slipped past the statement check
+                raise UserError(f"refused: {first}") from exc
+            raise UserError(f"SQL error: {first}") from exc
     finally:
         con.close()
 

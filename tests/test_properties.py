@@ -11,7 +11,6 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
@@ -225,9 +224,6 @@ def test_snapshot_sequence_replays_every_as_of(seq) -> None:
         con.close()
 
 
-@pytest.mark.xfail(strict=True, reason="ingest skips a file whose bytes were seen before even "
-                   "when its as_of differs, so a revision that reverts to an earlier snapshot "
-                   "is lost (found by test_snapshot_sequence_replays_every_as_of)")
 def test_revert_to_earlier_snapshot_is_a_new_vintage(tmp_path) -> None:
     """Snapshots 5 → 7 → 5: as of the third day the value is 5 again."""
     (tmp_path / "snap").mkdir()
@@ -240,9 +236,6 @@ def test_revert_to_earlier_snapshot_is_a_new_vintage(tmp_path) -> None:
     assert got == {("Vell Osk", "cases", key[1]): 5.0}
 
 
-@pytest.mark.xfail(strict=True, reason="ingest lets DuckDB's sniffer guess the CSV quote "
-                   "character; names that open or close with ' make it pick ' and rows merge "
-                   "silently (found by test_daily_csv_and_jsonl_round_trip_exactly)")
 def test_csv_apostrophes_at_name_edges_kept_verbatim(tmp_path) -> None:
     """Standard CSV (RFC 4180 quotes with "): names 'Ardel and Brisk' stay two names."""
     (tmp_path / "snap").mkdir()
