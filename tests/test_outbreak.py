@@ -322,7 +322,7 @@ def test_same_seed_same_bytes_other_seed_differs(tmp_path: Path) -> None:
     s1 = write_scenario(tmp_path / "a", seed=11, **kw)
     write_scenario(tmp_path / "b", seed=11, **kw)
     write_scenario(tmp_path / "c", seed=12, **kw)
-    assert s1["n_files"] == 3 * 8 + 1 + 5
+    assert s1["n_files"] == 3 * 8 + 2 + 5  # snapshots, feeds.toml + regions.csv, truth
     assert digest(tmp_path / "a") == digest(tmp_path / "b")
     assert digest(tmp_path / "a") != digest(tmp_path / "c")
     # rewriting with fewer snapshots removes the earlier run's files
