@@ -17,10 +17,10 @@ import numpy as np
 import pandas as pd
 
 from models.artefacts import ReportingRepair
-from pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map, to_blocks
+from pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
 from pipeline.settings import Settings
 from pipeline.store import insert_df
-from pipeline.vintages import observations_as_of
+from pipeline.vintages import dense_blocks, observation_blocks
 
 WEEKDAYS = ["Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday"]
 
@@ -48,8 +48,7 @@ def _repair_block(args: tuple[SeriesBlock, dict[str, Any]]) -> dict[str, Any]:
 def clean(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, *,
           run_id: str, mapper: Mapper = serial_map) -> dict[str, Any]:
     """Repair every (region, signal) series known on ``as_of`` and write the audit trail."""
-    obs = observations_as_of(con, as_of)
-    blocks = to_blocks(obs, end=as_of)
+    blocks = observation_blocks(con, as_of, end=as_of)
     n_actions, n_series, lines, skipped = 0, 0, [], []
     for signal, block in blocks.items():
         cfg = settings.for_signal(signal)
@@ -61,12 +60,7 @@ def clean(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, *,
             if isinstance(res, BatchFailure):
                 skipped.extend(f"{signal}/{r}: {res.message[:200]}" for r in sub.regions)
                 continue
-            df = sub.long("value_reported")
-            df["value_clean"] = res["clean"].reshape(-1)
-            df["flag"] = [f or None for f in np.asarray(res["flag"], dtype=object).reshape(-1)]
-            df["value_adjusted"] = res["adjusted"].reshape(-1)
-            df.insert(0, "run_id", run_id)
-            insert_df(con, "core.cleaned", df)
+            insert_df(con, "core.cleaned", _cleaned_frame(run_id, sub, res))
             n_series += len(sub.regions)
             acts = res["actions"]
             if len(acts):
@@ -95,10 +89,41 @@ def clean(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, *,
     return out
 
 
-def cleaned_blocks(con: duckdb.DuckDBPyConnection, run_id: str, *,
-                   adjusted: bool = False) -> dict[str, SeriesBlock]:
-    """This run's cleaned series per signal (the input of the later stages)."""
+def _codes(values: np.ndarray, n_repeat: int) -> pd.Categorical:
+    """``np.repeat(values, n_repeat)`` as a categorical: integer codes instead of millions of
+    Python strings (DuckDB stores it as VARCHAR like any text column)."""
+    codes = np.repeat(np.arange(len(values), dtype=np.int32), n_repeat)
+    return pd.Categorical.from_codes(codes, categories=pd.Index(values, dtype=object))
+
+
+def _cleaned_frame(run_id: str, sub: SeriesBlock, res: dict[str, Any]) -> pd.DataFrame:
+    """The core.cleaned rows of one batch (``sub.long`` plus the repair's columns)."""
+    n, t = sub.values.shape
+    flag = np.asarray(res["flag"], dtype=object).reshape(-1)
+    flag = np.where(flag == "", None, flag)  # '' (no flag) is stored as NULL
+    return pd.DataFrame({
+        "run_id": _codes(np.array([run_id]), n * t),
+        "region": _codes(sub.regions, t),
+        "signal": _codes(np.array([sub.signal]), n * t),
+        "ref_date": np.tile(sub.dates, n).astype("datetime64[D]"),
+        "value_reported": sub.values.reshape(-1),
+        "value_clean": np.asarray(res["clean"], dtype=float).reshape(-1),
+        "flag": flag,
+        "value_adjusted": np.asarray(res["adjusted"], dtype=float).reshape(-1),
+    })
+
+
+def cleaned_blocks(con: duckdb.DuckDBPyConnection, run_id: str, *, adjusted: bool = False,
+                   since: dt.date | None = None) -> dict[str, SeriesBlock]:
+    """This run's cleaned series per signal (the input of the later stages).
+
+    ``since`` keeps only reference dates on or after it (stages that need the last months only).
+    """
     col = "value_adjusted" if adjusted else "value_clean"
-    df = con.execute(f"SELECT region, signal, ref_date, {col} AS value FROM core.cleaned "
-                     "WHERE run_id = ? ORDER BY signal, region, ref_date", [run_id]).df()
-    return to_blocks(df)
+    sql = (f"SELECT region, signal, ref_date, {col} AS value FROM core.cleaned "
+           "WHERE run_id = ?")
+    params: list = [run_id]
+    if since is not None:
+        sql += " AND ref_date >= ?"
+        params.append(since)
+    return dense_blocks(con, sql, params)

@@ -33,10 +33,12 @@ from pipeline.transmission import (
     interval_pmfs,
     median_corrected,
     nowcast_quantiles,
+    rt_span,
 )
 
 COMPARTMENTAL_SIGNALS = ("cases", "admissions", "deaths")
 RENEWAL_HISTORY_DAYS = 90
+COMPARTMENTAL_BURN_IN_DAYS = 60  # history before the fit window (burn-in, people infected)
 DEFAULT_POPULATION = 1_000_000.0  # used (and said in out.fits) when a region's size is unknown
 
 
@@ -60,7 +62,10 @@ def _renewal_job(args: tuple) -> dict[str, Any]:
     pooled (their summed incidence), and says so."""
     values, levels, q, rep, start, cfg, seed = args
     rng = np.random.default_rng(seed)
-    t_keep = min(values.shape[1], RENEWAL_HISTORY_DAYS)
+    # Only the last days matter: the last day's R_t (its window and the interval before it),
+    # the projection's lags (shorter) and the nowcast window; older days change nothing.
+    need = max(rt_span(cfg), values.shape[1] - start)
+    t_keep = min(values.shape[1], RENEWAL_HISTORY_DAYS, need)
     cut = values.shape[1] - t_keep
     values = np.nan_to_num(values[:, cut:])
     n_draws = int(cfg["forecast_draws"])
@@ -144,9 +149,12 @@ def _long(run_id: str, as_of: dt.date, model: str, signal: str, regions: np.ndar
           q_levels: list[float], q: np.ndarray) -> pd.DataFrame:
     n, h, k = q.shape
     targets = np.datetime64(as_of, "D") + np.arange(1, h + 1)
+    # region as a categorical: integer codes, not millions of Python strings (stored as VARCHAR)
+    region = pd.Categorical.from_codes(np.repeat(np.arange(n, dtype=np.int32), h * k),
+                                       categories=pd.Index(regions, dtype=object))
     df = pd.DataFrame({
         "run_id": run_id, "issued_on": np.datetime64(as_of, "D"), "model": model,
-        "region": np.repeat(regions, h * k), "signal": signal,
+        "region": region, "signal": signal,
         "target_date": np.tile(np.repeat(targets, k), n),
         "horizon_days": np.tile(np.repeat(np.arange(1, h + 1), k), n),
         "q_level": np.tile(q_levels, n * h), "value": q.reshape(-1)})
@@ -155,10 +163,24 @@ def _long(run_id: str, as_of: dt.date, model: str, signal: str, regions: np.ndar
 
 # ----------------------------------------------------------------------------- the stage
 
+def history_days(settings: Settings) -> int:
+    """Days of cleaned series (ending on as_of) the models read: older days cannot change a
+    forecast, so they are not loaded (series are years long, the models look back months)."""
+    need = 0
+    for signal in ["", *settings.per_signal]:
+        cfg = settings.for_signal(signal)
+        need = max(need, RENEWAL_HISTORY_DAYS,  # the renewal job's history
+                   int(cfg["fit_window_weeks"]) * 7 + COMPARTMENTAL_BURN_IN_DAYS,
+                   FlatBaseline().window_days + 8,  # changes of the 7-day mean, one step back
+                   int(cfg["max_delay_days"]) + 1)  # the nowcast window
+    return need
+
+
 def forecast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, *,
              run_id: str, mapper: Mapper = serial_map) -> dict[str, Any]:
     """Fit every model and write forecast quantiles for horizons 1..H of every region × signal."""
-    blocks = cleaned_blocks(con, run_id, adjusted=True)
+    blocks = cleaned_blocks(con, run_id, adjusted=True,
+                            since=as_of - dt.timedelta(days=history_days(settings) - 1))
     wanted = list(settings.get("models"))
     results: dict[str, dict[str, np.ndarray]] = {}  # model -> signal -> (n, H, k) adjusted
     corrected: dict[str, tuple[SeriesBlock, tuple]] = {}
@@ -260,7 +282,7 @@ def _run_compartmental(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings:
         return
     cfg = settings.for_signal(sigs[0])
     regions = np.unique(np.concatenate([blocks[s].regions for s in sigs]))
-    n_days = int(cfg["fit_window_weeks"]) * 7 + 60  # window + burn-in history
+    n_days = int(cfg["fit_window_weeks"]) * 7 + COMPARTMENTAL_BURN_IN_DAYS
     series: dict[str, np.ndarray] = {}
     for s in sigs:
         block, nq = corrected[s]

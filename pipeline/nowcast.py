@@ -148,7 +148,7 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
         D = int(cfg["max_delay_days"])
         n_ref = max(int(cfg["nowcast_training_days"]), D + 7)
         since = as_of - dt.timedelta(days=n_ref - 1)
-        vint = vintages_as_of(con, as_of, since=since)
+        vint = vintages_as_of(con, as_of, since=since, signals=[signal])
         vint = vint[vint["signal"] == signal]
         if vint.empty:
             continue

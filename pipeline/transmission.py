@@ -15,7 +15,7 @@ from typing import Any
 import duckdb
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import special
 
 from models.renewal import CoriEstimator, doubling_time, growth_rate_from_r, resolve_interval
 from pipeline.clean import cleaned_blocks
@@ -42,27 +42,39 @@ def nowcast_quantiles(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
                       block: SeriesBlock) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
     """This run's nowcast as arrays aligned to ``block``: levels (k,), quantiles (n, D1, k),
     reported (n, D1) and the column where the nowcast window starts in the block."""
-    df = con.execute("SELECT region, ref_date, q_level, value, reported FROM out.nowcast "
-                     "WHERE run_id = ? AND signal = ? ORDER BY region, ref_date, q_level",
-                     [run_id, signal]).df()
-    if df.empty:
+    con.register("_nq_regions", pd.DataFrame({"region": block.regions,
+                                              "r": np.arange(len(block.regions))}))
+    try:
+        # region positions are found by DuckDB; only numbers come back
+        got = con.execute(
+            "SELECT coalesce(g.r, -1) AS r, n.ref_date, n.q_level, n.value, n.reported "
+            "FROM out.nowcast n LEFT JOIN _nq_regions g USING (region) "
+            "WHERE n.run_id = ? AND n.signal = ?", [run_id, signal]).fetchnumpy()
+    finally:
+        con.unregister("_nq_regions")
+    if len(got["r"]) == 0:
         return np.array([0.5]), np.zeros((len(block.regions), 0, 1)), \
             np.zeros((len(block.regions), 0)), len(block.dates)
-    levels = np.sort(df["q_level"].unique())
-    dates = np.sort(df["ref_date"].unique()).astype("datetime64[D]")
+    ref = np.asarray(got["ref_date"]).astype("datetime64[D]")
+    q_level = _filled(got["q_level"])
+    levels = np.unique(q_level)
+    dates = np.unique(ref)
     k, t = len(levels), len(dates)
-    pos = {r: i for i, r in enumerate(block.regions)}
     q = np.full((len(block.regions), t, k), np.nan)
     rep = np.full((len(block.regions), t), np.nan)
-    r_idx = df["region"].map(pos).to_numpy()
-    ok = ~pd.isna(r_idx)
-    t_idx = np.searchsorted(dates, df["ref_date"].to_numpy().astype("datetime64[D]"))
-    l_idx = np.searchsorted(levels, df["q_level"].to_numpy())
-    r_i = r_idx[ok].astype(int)
-    q[r_i, t_idx[ok], l_idx[ok]] = df["value"].to_numpy()[ok]
-    rep[r_i, t_idx[ok]] = df["reported"].to_numpy()[ok]
+    r_idx = np.asarray(got["r"], dtype=np.int64)
+    ok = r_idx >= 0
+    t_idx = np.searchsorted(dates, ref)
+    l_idx = np.searchsorted(levels, q_level)
+    q[r_idx[ok], t_idx[ok], l_idx[ok]] = _filled(got["value"])[ok]
+    rep[r_idx[ok], t_idx[ok]] = _filled(got["reported"])[ok]
     start = int(np.searchsorted(block.dates, dates[0]))
     return levels, q, rep, start
+
+
+def _filled(a: np.ndarray) -> np.ndarray:
+    """A fetched numeric column as floats with NULL as NaN."""
+    return np.ma.filled(a.astype(float), np.nan) if np.ma.isMaskedArray(a) else a.astype(float)
 
 
 def _quantile_draws(levels: np.ndarray, q: np.ndarray, u: np.ndarray) -> np.ndarray:
@@ -74,9 +86,10 @@ def _quantile_draws(levels: np.ndarray, q: np.ndarray, u: np.ndarray) -> np.ndar
     idx = np.clip(np.searchsorted(levels, u) - 1, 0, k - 2)
     lo_l, hi_l = levels[idx], levels[idx + 1]
     w = np.clip((u - lo_l) / (hi_l - lo_l), 0.0, 1.0)
-    qb = np.broadcast_to(q[None], (u.shape[0],) + q.shape)
-    lo = np.take_along_axis(qb, idx[..., None], axis=-1)[..., 0]
-    hi = np.take_along_axis(qb, (idx + 1)[..., None], axis=-1)[..., 0]
+    # one flat gather of the bracketing quantiles of every (draw, cell)
+    flat = np.ascontiguousarray(q).reshape(-1)
+    pos = (np.arange(q.shape[0] * q.shape[1]) * k).reshape(q.shape[:2])[None] + idx
+    lo, hi = flat[pos], flat[pos + 1]
     return lo + w * (hi - lo)
 
 
@@ -92,7 +105,7 @@ def incidence_draws(values: np.ndarray, levels: np.ndarray, q: np.ndarray, repor
     n = values.shape[0]
     z = (np.sqrt(NOWCAST_DAY_CORRELATION) * rng.standard_normal((m, n, 1))
          + np.sqrt(1 - NOWCAST_DAY_CORRELATION) * rng.standard_normal((m, n, t)))
-    u = stats.norm.cdf(z)
+    u = special.ndtr(z)  # the standard normal CDF (what scipy.stats.norm.cdf evaluates)
     eventual = _quantile_draws(levels, np.nan_to_num(q), u)
     base = values[:, start:start + t]
     scaled = _complete(base[None], eventual, reported[None])
@@ -124,21 +137,70 @@ def median_corrected(values: np.ndarray, levels: np.ndarray, q: np.ndarray, repo
     return out
 
 
+def rt_span(cfg: dict[str, Any]) -> int:
+    """Days before a published day that its R_t depends on: the window, then the interval."""
+    return int(cfg["rt_window_days"]) + max(len(p) for p in interval_pmfs(cfg))
+
+
+def history_cut(t0: int, start: int, cfg: dict[str, Any]) -> int:
+    """First day of the series the estimates of days ``t0``.. depend on (0 = the whole series).
+
+    R_t at day t uses the incidence of its window and, through Lambda, the interval's span
+    before it, so older days cannot change a published value: dropping them gives the same
+    numbers for a fraction of the work (series are years long, ``rt_history_days`` is months).
+    The nowcast window (from ``start``) is always kept.
+    """
+    return max(0, min(t0 - rt_span(cfg), start))
+
+
+def history_days(settings: Settings) -> int:
+    """Days of cleaned series (ending on as_of) that every signal's published R_t depends on."""
+    need = 0
+    for signal in ["", *settings.per_signal]:
+        cfg = settings.for_signal(signal)
+        need = max(need, int(cfg["rt_history_days"]) + rt_span(cfg),
+                   int(cfg["max_delay_days"]) + 1)
+    return need
+
+
+def _posteriors(est: CoriEstimator, draws: np.ndarray, interval: Any
+                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Quantiles, P(R > 1) and mean of the (mixture) posterior of every day of ``draws``."""
+    est.fit_draws(draws, interval)
+    # a mixture of posteriors can round to 1 + 1e-16: keep the probability in [0, 1]
+    return est.quantiles(RT_LEVELS), np.clip(est.prob_above(1.0), 0.0, 1.0), est.mean_
+
+
 def _estimate_block(args: tuple) -> dict[str, Any]:
-    """Rt, P(R>1) and growth for one batch of regions (pure; runs inside a task)."""
+    """Rt, P(R>1) and growth for one batch of regions (pure; runs inside a task).
+
+    The incidence draws differ only from the nowcast window (column ``start``) on, so days
+    before it have the same posterior in every draw: they are estimated once from the cleaned
+    series, and the mixture over draws is fitted only on the days from ``start`` (with the
+    history their windows and intervals reach back to).  Same numbers, less work.
+    """
     values, levels, q, rep, start, cfg, seed = args
     rng = np.random.default_rng(seed)
     pmfs = interval_pmfs(cfg)
+    interval = pmfs if len(pmfs) > 1 else pmfs[0]
     mean, sd = float(cfg["rt_prior_mean"]), float(cfg["rt_prior_sd"])
     est = CoriEstimator(window=int(cfg["rt_window_days"]), prior_shape=(mean / sd) ** 2,
                         prior_scale=sd ** 2 / mean, min_infections=float(cfg["rt_min_infections"]))
     values = np.nan_to_num(values)
-    draws = incidence_draws(values, levels, q, rep, start, RT_DRAWS, rng)
-    est.fit_draws(draws, pmfs if len(pmfs) > 1 else pmfs[0])
-    qs = est.quantiles(RT_LEVELS)
-    # a mixture of posteriors can round to 1 + 1e-16: keep the probability in [0, 1]
-    p_grow = np.clip(est.prob_above(1.0), 0.0, 1.0)
-    r_mean = est.mean_
+    n, n_days = values.shape
+    start = min(max(int(start), 0), n_days)
+    qs = np.full((n, n_days, len(RT_LEVELS)), np.nan)
+    p_grow = np.full((n, n_days), np.nan)
+    r_mean = np.full((n, n_days), np.nan)
+    if start > 0:  # before the nowcast window: one posterior per day
+        sl = slice(0, start)
+        qs[:, sl], p_grow[:, sl], r_mean[:, sl] = _posteriors(est, values[None, :, sl], interval)
+    if start < n_days:  # the nowcast window: the mixture over incidence draws
+        draws = incidence_draws(values, levels, q, rep, start, RT_DRAWS, rng)
+        c = max(0, start - rt_span(cfg))
+        got = _posteriors(est, draws[..., c:], interval)
+        sl = slice(start, n_days)
+        qs[:, sl], p_grow[:, sl], r_mean[:, sl] = (a[:, start - c:] for a in got)
     growth = growth_rate_from_r(r_mean, pmfs[0])
     return {"q": qs, "mean": r_mean, "p": p_grow, "growth": growth,
             "doubling": doubling_time(growth)}
@@ -148,17 +210,21 @@ def transmission(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Setti
                  run_id: str, mapper: Mapper = serial_map) -> dict[str, Any]:
     """Estimate R_t and growth for every region × signal with enough counts."""
     lines, n_rows, skipped = [], 0, []
-    blocks = cleaned_blocks(con, run_id, adjusted=bool(settings.get("use_weekday_adjusted")))
+    since = as_of - dt.timedelta(days=history_days(settings) - 1)
+    blocks = cleaned_blocks(con, run_id, adjusted=bool(settings.get("use_weekday_adjusted")),
+                            since=since)
     for signal, block in blocks.items():
         cfg = settings.for_signal(signal)
         levels, q, rep, start = nowcast_quantiles(con, run_id, signal, block)
         parts = batches(len(block.regions), int(cfg["batch_regions"]))
-        jobs = [(block.values[s], levels, q[s], rep[s], start, cfg, int(cfg["seed"]) + i)
-                for i, s in enumerate(parts)]
-        results = mapper(_estimate_block, jobs)
         keep_days = int(cfg["rt_history_days"])
         t0 = max(0, len(block.dates) - keep_days)
         dates = block.dates[t0:]
+        cut = history_cut(t0, start, cfg)
+        jobs = [(block.values[s, cut:], levels, q[s], rep[s], start - cut, cfg,
+                 int(cfg["seed"]) + i) for i, s in enumerate(parts)]
+        results = mapper(_estimate_block, jobs)
+        t0 -= cut  # column of the first published day in the (shortened) results
         n_nc = int(cfg["rt_nowcast_days"])
         window = int(cfg["rt_window_days"])
         # a day depends on the nowcast when its window reaches into the last n_nc days

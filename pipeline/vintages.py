@@ -17,8 +17,10 @@ from __future__ import annotations
 import datetime as dt
 
 import duckdb
+import numpy as np
 import pandas as pd
 
+from pipeline.frames import SeriesBlock
 from pipeline.store import transaction
 
 _DAILY_SQL = """
@@ -54,11 +56,84 @@ QUALIFY value IS DISTINCT FROM lag(value) OVER (PARTITION BY region, signal, ref
 """
 
 
+#: The rows the new files add when every one of them is later than all earlier snapshots of
+#: their signals: the same rules as ``_DAILY_SQL`` applied to the new snapshots only, each key
+#: compared with its last known value (the last kept row of a key carries the value of its last
+#: vintage, since a row is dropped only when it repeats the one before it).
+_APPEND_SQL = """
+WITH snap AS (
+    SELECT source, region, signal, ref_date, as_of, value, value_kind, file_id
+    FROM raw.reports
+    WHERE file_id IN (SELECT file_id FROM _new_files)
+    QUALIFY row_number() OVER (PARTITION BY source, region, signal, as_of, ref_date
+                               ORDER BY file_id DESC) = 1
+),
+seen AS (  -- cumulative series that already had a snapshot before the new files
+    SELECT DISTINCT source, region, signal FROM raw.reports
+    WHERE value_kind = 'cumulative' AND signal IN (SELECT signal FROM _affected)
+      AND file_id IN (SELECT file_id FROM core.vintaged_files)
+),
+cum AS (
+    SELECT s.region, s.signal, s.ref_date, s.as_of, s.value, s.file_id,
+        lag(s.value) OVER w AS prev_value,
+        lag(s.ref_date) OVER w AS prev_ref,
+        s.as_of = min(s.as_of) OVER (PARTITION BY s.source, s.region, s.signal)
+            AND e.source IS NULL AS first_snapshot
+    FROM snap s
+    LEFT JOIN seen e ON e.source = s.source AND e.region = s.region AND e.signal = s.signal
+    WHERE s.value_kind = 'cumulative'
+    WINDOW w AS (PARTITION BY s.source, s.region, s.signal, s.as_of ORDER BY s.ref_date)
+),
+daily AS (
+    SELECT region, signal, ref_date, as_of, value, file_id FROM snap WHERE value_kind = 'daily'
+    UNION ALL
+    SELECT region, signal, ref_date, as_of,
+           CASE WHEN prev_value IS NULL THEN value ELSE value - prev_value END, file_id
+    FROM cum WHERE prev_value IS NOT NULL OR first_snapshot
+    UNION ALL
+    SELECT region, signal, unnest(range(prev_ref + 1, ref_date, INTERVAL 1 DAY))::DATE,
+           as_of, 0.0, file_id
+    FROM cum WHERE prev_ref IS NOT NULL AND ref_date - prev_ref > 1
+),
+keys AS (SELECT DISTINCT region, signal, ref_date FROM daily),
+last AS (
+    SELECT o.region, o.signal, o.ref_date, o.value
+    FROM core.observations o
+    JOIN keys k ON o.region = k.region AND o.signal = k.signal AND o.ref_date = k.ref_date
+    QUALIFY row_number() OVER (PARTITION BY o.region, o.signal, o.ref_date
+                               ORDER BY o.as_of DESC, o.file_id DESC NULLS FIRST) = 1
+),
+both_ AS (
+    SELECT region, signal, ref_date, NULL::DATE AS as_of, value, NULL::BIGINT AS file_id,
+           true AS known FROM last
+    UNION ALL
+    SELECT region, signal, ref_date, as_of, value, file_id, false FROM daily
+)
+SELECT region, signal, ref_date, as_of, value, file_id FROM both_
+QUALIFY NOT known AND value IS DISTINCT FROM lag(value) OVER (
+    PARTITION BY region, signal, ref_date ORDER BY known DESC, as_of, file_id)
+"""
+
+
+def _appendable(con: duckdb.DuckDBPyConnection) -> bool:
+    """True when every new file is later than every earlier snapshot of the affected signals
+    (the daily case): the history then only grows at its end and need not be rebuilt."""
+    new_min = con.execute("SELECT min(as_of) FROM raw.reports "
+                          "WHERE file_id IN (SELECT file_id FROM _new_files)").fetchall()[0][0]
+    old_max = con.execute(
+        "SELECT max(as_of) FROM raw.reports WHERE signal IN (SELECT signal FROM _affected) "
+        "AND file_id IN (SELECT file_id FROM core.vintaged_files)").fetchall()[0][0]
+    return new_min is not None and old_max is not None and new_min > old_max
+
+
 def update_observations(con: duckdb.DuckDBPyConnection) -> dict[str, int]:
-    """Rebuild the value history of every signal that received new files (one transaction).
+    """Bring the value history of every signal that received new files up to date (one
+    transaction).
 
     ``core.observations`` stays a pure function of ``raw.reports``: a late-arriving older snapshot
-    is slotted into its place in the history rather than appended out of order.
+    is slotted into its place in the history rather than appended out of order (the signal's
+    history is rebuilt); new snapshots later than everything known (the daily case) only append
+    their changes, which gives the same rows without re-reading the whole history.
     """
     new = con.execute(
         "SELECT file_id FROM raw.feed_files WHERE status IN ('accepted', 'partial') "
@@ -70,8 +145,12 @@ def update_observations(con: duckdb.DuckDBPyConnection) -> dict[str, int]:
         con.register("_new_files", new)
         con.execute("CREATE OR REPLACE TEMP TABLE _affected AS SELECT DISTINCT signal "
                     "FROM raw.reports WHERE file_id IN (SELECT file_id FROM _new_files)")
-        con.execute("DELETE FROM core.observations WHERE signal IN (SELECT signal FROM _affected)")
-        con.execute(f"INSERT INTO core.observations {_DAILY_SQL}")
+        if _appendable(con):
+            con.execute(f"INSERT INTO core.observations {_APPEND_SQL}")
+        else:
+            con.execute("DELETE FROM core.observations "
+                        "WHERE signal IN (SELECT signal FROM _affected)")
+            con.execute(f"INSERT INTO core.observations {_DAILY_SQL}")
         con.execute("INSERT INTO core.vintaged_files SELECT file_id FROM _new_files")
         con.unregister("_new_files")
         n_sig = con.execute("SELECT count(*) FROM _affected").fetchall()[0][0]
@@ -102,13 +181,18 @@ def observations_as_of(
 
 
 def vintages_as_of(con: duckdb.DuckDBPyConnection, as_of: dt.date | str,
-                   *, since: dt.date | str | None = None) -> pd.DataFrame:
-    """All vintage rows known on ``as_of`` (optionally only ref_dates >= ``since``)."""
+                   *, since: dt.date | str | None = None,
+                   signals: list[str] | None = None) -> pd.DataFrame:
+    """All vintage rows known on ``as_of`` (optionally only ref_dates >= ``since``, only some
+    signals)."""
     sql = "SELECT region, signal, ref_date, as_of, value FROM core.observations WHERE as_of <= ?"
     params: list = [as_of]
     if since is not None:
         sql += " AND ref_date >= ?"
         params.append(since)
+    if signals:
+        sql += " AND signal IN (SELECT unnest(?::VARCHAR[]))"
+        params.append(list(signals))
     return con.execute(sql + " ORDER BY signal, region, ref_date, as_of", params).df()
 
 
@@ -116,3 +200,58 @@ def first_vintage(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
     """Earliest as_of per signal: reference dates before it were never seen at delay 0."""
     return con.execute("SELECT signal, min(as_of) AS first_as_of, max(as_of) AS last_as_of "
                        "FROM core.observations GROUP BY signal ORDER BY signal").df()
+
+
+def dense_blocks(con: duckdb.DuckDBPyConnection, relation: str, params: list,
+                 *, end: dt.date | None = None) -> dict[str, SeriesBlock]:
+    """One :class:`SeriesBlock` per signal from a relation (region, signal, ref_date, value).
+
+    The same blocks as ``frames.to_blocks(df, end=end)`` of the relation's rows (regions sorted,
+    dates contiguous from the signal's first ref_date to its last or ``end``, NaN where no row),
+    but the positions are computed in DuckDB and only numbers cross into Python: at thousands of
+    regions this avoids millions of Python strings.  ``relation`` is trusted SQL (a query or
+    table written by the pipeline, never user text); ``params`` fill its placeholders.
+    """
+    rel = f"({relation})"
+    cap = "" if end is None else " WHERE ref_date <= ?::DATE"
+    cap_params = [] if end is None else [end]
+    con.execute(f"CREATE OR REPLACE TEMP TABLE _blocks_src AS SELECT * FROM {rel}{cap}",
+                params + cap_params)
+    try:
+        meta = con.execute("SELECT signal, min(ref_date), max(ref_date), "
+                           "list(DISTINCT region ORDER BY region) FROM _blocks_src "
+                           "GROUP BY signal ORDER BY signal").fetchall()
+        out: dict[str, SeriesBlock] = {}
+        for signal, lo, hi, names in meta:
+            regions = np.asarray(names, dtype=str)
+            if len(regions) > 1 and not np.all(regions[:-1] < regions[1:]):
+                regions = np.unique(regions)  # a collation that differs from numpy's order
+            hi = end if end is not None else hi
+            dates = np.arange(np.datetime64(lo, "D"), np.datetime64(hi, "D") + 1,
+                              dtype="datetime64[D]")
+            con.register("_blocks_regions", pd.DataFrame(
+                {"region": regions, "r": np.arange(len(regions), dtype=np.int64)}))
+            try:
+                got = con.execute(
+                    "SELECT g.r, CAST(s.ref_date - ?::DATE AS BIGINT) AS t, "
+                    "CAST(s.value AS DOUBLE) AS v FROM _blocks_src s "
+                    "JOIN _blocks_regions g USING (region) WHERE s.signal = ?",
+                    [lo, signal]).fetchnumpy()
+            finally:
+                con.unregister("_blocks_regions")
+            vals = np.full((len(regions), len(dates)), np.nan)
+            v = got["v"]
+            v = np.ma.filled(v.astype(float), np.nan) if np.ma.isMaskedArray(v) else v
+            vals[np.asarray(got["r"], dtype=np.int64), np.asarray(got["t"], dtype=np.int64)] = v
+            out[str(signal)] = SeriesBlock(str(signal), regions, dates, vals)
+        return out
+    finally:
+        con.execute("DROP TABLE IF EXISTS _blocks_src")
+
+
+def observation_blocks(con: duckdb.DuckDBPyConnection, as_of: dt.date | str,
+                       *, end: dt.date | None = None) -> dict[str, SeriesBlock]:
+    """:func:`observations_as_of` as one array per signal (``to_blocks(..., end=end)``)."""
+    sql = ("SELECT region, signal, ref_date, arg_max(value, as_of) AS value "
+           "FROM core.observations WHERE as_of <= ? GROUP BY region, signal, ref_date")
+    return dense_blocks(con, sql, [as_of], end=end)
