@@ -23,23 +23,18 @@ import pandas as pd
 from pipeline.frames import SeriesBlock
 from pipeline.store import transaction
 
-_DAILY_SQL = """
-WITH snap AS (
+#: Latest file of each snapshot row (a re-issued snapshot replaces the earlier file).
+_SNAPSHOTS = """WITH snap AS (
     SELECT source, region, signal, ref_date, as_of, value, value_kind, file_id
     FROM raw.reports
-    WHERE signal IN (SELECT signal FROM _affected)
+    WHERE {where}
     QUALIFY row_number() OVER (PARTITION BY source, region, signal, as_of, ref_date
                                ORDER BY file_id DESC) = 1
-),
-cum AS (
-    SELECT *,
-        lag(value) OVER w AS prev_value,
-        lag(ref_date) OVER w AS prev_ref,
-        as_of = min(as_of) OVER (PARTITION BY source, region, signal) AS first_snapshot
-    FROM snap WHERE value_kind = 'cumulative'
-    WINDOW w AS (PARTITION BY source, region, signal, as_of ORDER BY ref_date)
-),
-daily AS (
+)"""
+
+#: Daily values of every snapshot: daily feeds as they are; cumulative feeds differenced within
+#: the snapshot (from CTE ``cum``), with absent dates inside the span set to 0.
+_DIFFERENCED = """daily AS (
     SELECT region, signal, ref_date, as_of, value, file_id FROM snap WHERE value_kind = 'daily'
     UNION ALL
     SELECT region, signal, ref_date, as_of,
@@ -49,11 +44,24 @@ daily AS (
     SELECT region, signal, unnest(range(prev_ref + 1, ref_date, INTERVAL 1 DAY))::DATE,
            as_of, 0.0, file_id
     FROM cum WHERE prev_ref IS NOT NULL AND ref_date - prev_ref > 1
-)
+)"""
+
+_DAILY_SQL = """
+{snapshots_affected},
+cum AS (
+    SELECT *,
+        lag(value) OVER w AS prev_value,
+        lag(ref_date) OVER w AS prev_ref,
+        as_of = min(as_of) OVER (PARTITION BY source, region, signal) AS first_snapshot
+    FROM snap WHERE value_kind = 'cumulative'
+    WINDOW w AS (PARTITION BY source, region, signal, as_of ORDER BY ref_date)
+),
+{differenced}
 SELECT region, signal, ref_date, as_of, value, file_id FROM daily
 QUALIFY value IS DISTINCT FROM lag(value) OVER (PARTITION BY region, signal, ref_date
                                                 ORDER BY as_of, file_id)
-"""
+""".format(snapshots_affected=_SNAPSHOTS.format(where="signal IN (SELECT signal FROM _affected)"),
+                              differenced=_DIFFERENCED)
 
 
 #: The rows the new files add when every one of them is later than all earlier snapshots of
@@ -61,13 +69,7 @@ QUALIFY value IS DISTINCT FROM lag(value) OVER (PARTITION BY region, signal, ref
 #: compared with its last known value (the last kept row of a key carries the value of its last
 #: vintage, since a row is dropped only when it repeats the one before it).
 _APPEND_SQL = """
-WITH snap AS (
-    SELECT source, region, signal, ref_date, as_of, value, value_kind, file_id
-    FROM raw.reports
-    WHERE file_id IN (SELECT file_id FROM _new_files)
-    QUALIFY row_number() OVER (PARTITION BY source, region, signal, as_of, ref_date
-                               ORDER BY file_id DESC) = 1
-),
+{snapshots_new},
 seen AS (  -- cumulative series that already had a snapshot before the new files
     SELECT DISTINCT source, region, signal FROM raw.reports
     WHERE value_kind = 'cumulative' AND signal IN (SELECT signal FROM _affected)
@@ -84,17 +86,7 @@ cum AS (
     WHERE s.value_kind = 'cumulative'
     WINDOW w AS (PARTITION BY s.source, s.region, s.signal, s.as_of ORDER BY s.ref_date)
 ),
-daily AS (
-    SELECT region, signal, ref_date, as_of, value, file_id FROM snap WHERE value_kind = 'daily'
-    UNION ALL
-    SELECT region, signal, ref_date, as_of,
-           CASE WHEN prev_value IS NULL THEN value ELSE value - prev_value END, file_id
-    FROM cum WHERE prev_value IS NOT NULL OR first_snapshot
-    UNION ALL
-    SELECT region, signal, unnest(range(prev_ref + 1, ref_date, INTERVAL 1 DAY))::DATE,
-           as_of, 0.0, file_id
-    FROM cum WHERE prev_ref IS NOT NULL AND ref_date - prev_ref > 1
-),
+{differenced},
 keys AS (SELECT DISTINCT region, signal, ref_date FROM daily),
 last AS (
     SELECT o.region, o.signal, o.ref_date, o.value
@@ -112,7 +104,8 @@ both_ AS (
 SELECT region, signal, ref_date, as_of, value, file_id FROM both_
 QUALIFY NOT known AND value IS DISTINCT FROM lag(value) OVER (
     PARTITION BY region, signal, ref_date ORDER BY known DESC, as_of, file_id)
-"""
+""".format(snapshots_new=_SNAPSHOTS.format(where="file_id IN (SELECT file_id FROM _new_files)"),
+                                 differenced=_DIFFERENCED)
 
 
 def _appendable(con: duckdb.DuckDBPyConnection) -> bool:
