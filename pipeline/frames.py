@@ -8,9 +8,9 @@ shares one definition of "the series of a signal".
 from __future__ import annotations
 
 import datetime as dt
-from collections.abc import Callable, Iterable, Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import Any, TypeVar
+from typing import TypeVar
 
 import numpy as np
 import pandas as pd
@@ -91,21 +91,3 @@ def batches(n: int, size: int) -> list[slice]:
     """Contiguous slices of ``size`` regions (the unit of fan-out)."""
     size = max(1, int(size))
     return [slice(i, min(i + size, n)) for i in range(0, n, size)]
-
-
-def quantile_long(regions: np.ndarray, signal: str, dates: np.ndarray, q_levels: Iterable[float],
-                  q_values: np.ndarray, **extra: Any) -> pd.DataFrame:
-    """Long quantile table from an array (n_regions, n_dates, n_q)."""
-    q = np.asarray(list(q_levels), dtype=float)
-    n, t, k = q_values.shape
-    df = pd.DataFrame({
-        "region": np.repeat(regions, t * k),
-        "signal": signal,
-        "ref_date": np.tile(np.repeat(dates.astype("datetime64[D]"), k), n),
-        "q_level": np.tile(q, n * t),
-        "value": q_values.reshape(-1),
-    })
-    for key, val in extra.items():
-        arr = np.asarray(val)
-        df[key] = np.repeat(arr.reshape(-1), k) if arr.shape == (n, t) else val
-    return df

@@ -41,7 +41,6 @@ import stat
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
 
 import duckdb
 import numpy as np
@@ -876,9 +875,3 @@ def ingest_spec(con: duckdb.DuckDBPyConnection, spec_path: str | Path,
 
         update_observations(con)
     return summary
-
-
-def spec_settings(spec: FeedSpec) -> dict[str, Any]:
-    """The spec as a plain dict (for logs and run records)."""
-    return {"name": spec.name, "path": spec.path, "format": spec.format,
-            "value_kind": spec.value_kind, "signal": spec.signal or spec.signal_column}

@@ -219,26 +219,3 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
     if skipped:
         out["skipped"] = skipped
     return out
-
-
-def corrected_series(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
-                     value: str = "value_clean") -> pd.DataFrame:
-    """Cleaned series with its last days scaled up by the nowcast (median and quantiles).
-
-    Returns long rows (region, ref_date, median, ratio_lo.., ...): for reference dates covered by
-    the nowcast the cleaned value is multiplied by nowcast_q / reported (the completion factor),
-    falling back to the nowcast itself where nothing was reported yet.
-    """
-    return con.execute(
-        f"""
-        SELECT c.region, c.ref_date, c.{value} AS value, n.q_level,
-               CASE WHEN n.q_level IS NULL THEN c.{value}
-                    WHEN n.reported > 0 THEN c.{value} * n.value / n.reported
-                    ELSE n.value END AS corrected
-        FROM core.cleaned c
-        LEFT JOIN out.nowcast n
-          ON n.run_id = c.run_id AND n.region = c.region AND n.signal = c.signal
-         AND n.ref_date = c.ref_date
-        WHERE c.run_id = ? AND c.signal = ?
-        ORDER BY c.region, c.ref_date, n.q_level
-        """, [run_id, signal]).df()

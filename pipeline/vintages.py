@@ -189,12 +189,6 @@ def vintages_as_of(con: duckdb.DuckDBPyConnection, as_of: dt.date | str,
     return con.execute(sql + " ORDER BY signal, region, ref_date, as_of", params).df()
 
 
-def first_vintage(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
-    """Earliest as_of per signal: reference dates before it were never seen at delay 0."""
-    return con.execute("SELECT signal, min(as_of) AS first_as_of, max(as_of) AS last_as_of "
-                       "FROM core.observations GROUP BY signal ORDER BY signal").df()
-
-
 def dense_blocks(con: duckdb.DuckDBPyConnection, relation: str, params: list,
                  *, end: dt.date | None = None) -> dict[str, SeriesBlock]:
     """One :class:`SeriesBlock` per signal from a relation (region, signal, ref_date, value).
