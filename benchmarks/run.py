@@ -264,7 +264,7 @@ def environment(db_kind: str) -> dict[str, Any]:
 
 def generate(feeds: Path, regions: int, days: int, snapshots: int, seed: int) -> dict[str, Any]:
     """Write the scenario (reused when ``feeds`` already holds the same one)."""
-    from pipeline.simulate import write_scenario
+    from tallywave.pipeline.simulate import write_scenario
 
     marker = feeds / "benchmark.json"
     want = {"regions": regions, "days": days, "snapshots": snapshots, "seed": seed}
@@ -316,7 +316,7 @@ def _feed_files(feeds: Path) -> list[tuple[str, Path]]:
 
 
 def _connect(path: Path | None) -> duckdb.DuckDBPyConnection:
-    from pipeline import store
+    from tallywave.pipeline import store
 
     return store.memory() if path is None else store.connect(path)
 
@@ -495,7 +495,7 @@ def _daily_run(con: duckdb.DuckDBPyConnection, last: dt.date, settings: Any, nam
                trace: bool) -> tuple[dict[str, Any], StageMeter, Measure]:
     """One execute_run (serial mapper, then scoring), every stage measured; with ``trace``
     under tracemalloc (the whole run's Python peak is the largest of its stages' peaks)."""
-    from pipeline.run import execute_run
+    from tallywave.pipeline.run import execute_run
 
     sm = StageMeter(names)
     if trace:
@@ -524,10 +524,10 @@ def run_benchmark(cfg: Config) -> dict[str, Any]:
     (vintages, daily ingest, scoring) are traced in place (the tracing costs them nothing
     measurable).
     """
-    from pipeline.ingest import ingest_spec
-    from pipeline.run import stages
-    from pipeline.settings import Settings
-    from pipeline.vintages import update_observations
+    from tallywave.pipeline.ingest import ingest_spec
+    from tallywave.pipeline.run import stages
+    from tallywave.pipeline.settings import Settings
+    from tallywave.pipeline.vintages import update_observations
 
     root = cfg.out or Path(tempfile.mkdtemp(prefix="tallywave-bench-"))
     root.mkdir(parents=True, exist_ok=True)
@@ -635,7 +635,7 @@ def run_benchmark(cfg: Config) -> dict[str, Any]:
     if sdb is not None:
         sdb.unlink(missing_ok=True)
     scon, s_as_of, n_rows = _scoring_db(sdb, cfg.score_rows, cfg.regions, cfg.seed)
-    from pipeline.scoring import score
+    from tallywave.pipeline.scoring import score
 
     prof = _profiler(cfg.profile)
     with measured(box, cfg.trace):
@@ -664,8 +664,8 @@ def run_benchmark(cfg: Config) -> dict[str, Any]:
 def _ingest_py_peak(spec: Path, files: list[tuple[str, Path]]) -> float:
     """Python peak of ingest: files are ingested one at a time, so the peak is that of the
     largest file of a source; ingest each source's largest file traced into a scratch store."""
-    from pipeline import store
-    from pipeline.ingest import ingest_file, load_spec
+    from tallywave.pipeline import store
+    from tallywave.pipeline.ingest import ingest_file, load_spec
 
     by_dir = {s.path.split("/")[0]: s for s in load_spec(spec)}
     scratch = store.memory()
@@ -706,13 +706,13 @@ def _stage_limits(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Any,
     """Attach the bare-library limits to the stage rows and add the model-core rows."""
     from scipy import signal as sps
 
-    from models.compartmental import CompartmentalModel
-    from models.renewal import CoriEstimator
-    from pipeline.clean import cleaned_blocks
-    from pipeline.frames import to_blocks
-    from pipeline.nowcast import build_triangles
-    from pipeline.transmission import interval_pmfs, median_corrected, nowcast_quantiles
-    from pipeline.vintages import observations_as_of, vintages_as_of
+    from tallywave.models.compartmental import CompartmentalModel
+    from tallywave.models.renewal import CoriEstimator
+    from tallywave.pipeline.clean import cleaned_blocks
+    from tallywave.pipeline.frames import to_blocks
+    from tallywave.pipeline.nowcast import build_triangles
+    from tallywave.pipeline.transmission import interval_pmfs, median_corrected, nowcast_quantiles
+    from tallywave.pipeline.vintages import observations_as_of, vintages_as_of
 
     by = {r.stage: r for r in rows}
     # clean: pandas rolling median of the same (regions, days) arrays
@@ -808,7 +808,7 @@ def _stage_limits(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Any,
 
 def _flow_row(cfg: Config, db: Path | None, last: dt.date) -> Row:
     """The same daily run through the Prefect flow with the local (threads) runner."""
-    from flows.daily import daily
+    from tallywave.flows.daily import daily
 
     if db is None:
         raise SystemExit("--flow needs a database file (drop --memory)")

@@ -1,1 +1,1 @@
-"""Prefect orchestration: thin flows and tasks over the ``pipeline`` stages."""
+"""Prefect orchestration: thin flows and tasks over the ``tallywave.pipeline`` stages."""

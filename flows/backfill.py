@@ -8,11 +8,11 @@ from typing import Any
 
 from prefect import flow, get_run_logger
 
-from flows.daily import run_one
-from flows.runners import make_task_runner
-from pipeline import store
-from pipeline.errors import UserError
-from pipeline.settings import load_settings
+from tallywave.flows.daily import run_one
+from tallywave.flows.runners import make_task_runner
+from tallywave.pipeline import store
+from tallywave.pipeline.errors import UserError
+from tallywave.pipeline.settings import load_settings
 
 
 def _backfill(start: str, end: str, db: str | None = None, settings: str | None = None,
@@ -30,7 +30,7 @@ def _backfill(start: str, end: str, db: str | None = None, settings: str | None 
             runs.append(r["run_id"])
             log.info(f"backfill {day}: {r['line']}")
             day += dt.timedelta(days=step_days)
-        from pipeline.scoring import score
+        from tallywave.pipeline.scoring import score
 
         final = score(con, None, load_settings(settings))
     finally:
@@ -55,8 +55,8 @@ def demo(*, feeds: str = "sample_feeds", db: str | None = None, days: int = 21,
          settings: str | None = None, runner: str = "local",
          report_dir: str = "reports") -> dict[str, Any]:
     """The demo job: make the invented scenario if missing, ingest it, backfill, score, report."""
-    from pipeline.ingest import ingest_spec
-    from pipeline.simulate import DEMO_SNAPSHOTS, DEMO_WINDOW, write_scenario
+    from tallywave.pipeline.ingest import ingest_spec
+    from tallywave.pipeline.simulate import DEMO_SNAPSHOTS, DEMO_WINDOW, write_scenario
 
     spec = Path(feeds) / "feeds.toml"
     if not spec.exists():
@@ -78,7 +78,7 @@ def demo(*, feeds: str = "sample_feeds", db: str | None = None, days: int = 21,
     bf = backfill(start=start.isoformat(), end=end.isoformat(), db=db, settings=settings,
                   runner=runner, report=False)
     # ... and today's run, whose report is the morning's product.
-    from flows.daily import daily
+    from tallywave.flows.daily import daily
 
     today = daily(as_of=last.isoformat(), db=db, settings=settings, runner=runner,
                   report=True, report_dir=report_dir)

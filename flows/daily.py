@@ -11,11 +11,11 @@ from prefect import flow, get_run_logger, task
 from prefect.cache_policies import NO_CACHE
 from prefect.tasks import exponential_backoff
 
-from flows.runners import make_task_runner, prefect_mapper
-from pipeline import store
-from pipeline.ingest import ingest_spec
-from pipeline.run import execute_run
-from pipeline.settings import load_settings
+from tallywave.flows.runners import make_task_runner, prefect_mapper
+from tallywave.pipeline import store
+from tallywave.pipeline.ingest import ingest_spec
+from tallywave.pipeline.run import execute_run
+from tallywave.pipeline.settings import load_settings
 
 os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
 
@@ -40,13 +40,13 @@ def run_one(con: Any, as_of: dt.date, settings_path: str | None, *, specs: list[
     for spec in specs or []:
         say(ingest_feed(con, spec))
     if specs:
-        from pipeline.vintages import update_observations
+        from tallywave.pipeline.vintages import update_observations
 
         say(f"vintages: {update_observations(con)}")
     settings = load_settings(settings_path)
     result = execute_run(con, as_of, settings, mapper=prefect_mapper, progress=say)
     if report:
-        from pipeline.report import write_report
+        from tallywave.pipeline.report import write_report
 
         result["report"] = str(write_report(con, as_of=as_of, out_dir=report_dir))
         say(f"report: {result['report']}")

@@ -12,8 +12,8 @@ from prefect.futures import PrefectFuture
 from prefect.task_runners import ProcessPoolTaskRunner, TaskRunner, ThreadPoolTaskRunner
 from prefect.utilities.annotations import unmapped
 
-from pipeline.errors import UserError
-from pipeline.frames import BatchFailure
+from tallywave.pipeline.errors import UserError
+from tallywave.pipeline.frames import BatchFailure
 
 #: What ``--runner local`` means.  Measured on the demo (one daily run, 10 regions × 3 signals,
 #: 2 cores): threads 4.1–5.8 s, processes 12.7–13.5 s — our batches are numpy/scipy work that

@@ -4,7 +4,7 @@
 Reporting artefacts (negative corrections, missing days, zero runs with a catch-up day, backlog
 dumps) are repaired without changing any series' total, and every change is logged with a
 sentence a person can read.  ``raw.*`` and ``core.observations`` are never edited.
-Mathematics: :mod:`models.artefacts`.
+Mathematics: :mod:`tallywave.models.artefacts`.
 """
 
 from __future__ import annotations
@@ -16,11 +16,11 @@ import duckdb
 import numpy as np
 import pandas as pd
 
-from models.artefacts import ReportingRepair
-from pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
-from pipeline.settings import Settings
-from pipeline.store import insert_df
-from pipeline.vintages import dense_blocks, observation_blocks
+from tallywave.models.artefacts import ReportingRepair
+from tallywave.pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
+from tallywave.pipeline.settings import Settings
+from tallywave.pipeline.store import insert_df
+from tallywave.pipeline.vintages import dense_blocks, observation_blocks
 
 WEEKDAYS = ["Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday"]
 

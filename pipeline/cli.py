@@ -14,7 +14,7 @@ import os
 import sys
 from pathlib import Path
 
-from pipeline.errors import RunFailed, UserError
+from tallywave.pipeline.errors import RunFailed, UserError
 
 DEMO_DIR = "sample_feeds"
 DEMO_SPEC = "feeds.toml"
@@ -40,7 +40,7 @@ def _seconds(text: str) -> float:
 def _check_database(db: str | None) -> None:
     """Open and close the database before Prefect starts: a busy or unusable file then fails
     in one line (exit 3 / 2) instead of a flow traceback after the server start-up."""
-    from pipeline import store
+    from tallywave.pipeline import store
 
     store.connect(db).close()
 
@@ -126,7 +126,7 @@ def build_parser() -> argparse.ArgumentParser:
 # ---------------------------------------------------------------------------------------------
 
 def cmd_simulate(args: argparse.Namespace) -> int:
-    from pipeline.simulate import write_scenario
+    from tallywave.pipeline.simulate import write_scenario
 
     info = write_scenario(args.out, n_regions=args.regions, n_days=args.days,
                           n_snapshots=args.snapshots, window=args.window, seed=args.seed,
@@ -137,8 +137,8 @@ def cmd_simulate(args: argparse.Namespace) -> int:
 
 
 def cmd_ingest(args: argparse.Namespace) -> int:
-    from pipeline import store
-    from pipeline.ingest import ingest_spec
+    from tallywave.pipeline import store
+    from tallywave.pipeline.ingest import ingest_spec
 
     con = store.connect(args.db)
     summary = ingest_spec(con, args.spec)
@@ -150,7 +150,7 @@ def cmd_ingest(args: argparse.Namespace) -> int:
 
 
 def cmd_sql(args: argparse.Namespace) -> int:
-    from pipeline.query import read_only_query
+    from tallywave.pipeline.query import read_only_query
 
     df = read_only_query(args.db, args.query)
     import pandas as pd
@@ -162,7 +162,7 @@ def cmd_sql(args: argparse.Namespace) -> int:
 
 
 def cmd_export(args: argparse.Namespace) -> int:
-    from pipeline.query import export_table
+    from tallywave.pipeline.query import export_table
 
     n = export_table(args.db, args.table, args.to)
     print(f"exported {n} rows of {args.table} to {args.to}")
@@ -170,7 +170,7 @@ def cmd_export(args: argparse.Namespace) -> int:
 
 
 def cmd_run(args: argparse.Namespace) -> int:
-    from flows.daily import daily
+    from tallywave.flows.daily import daily
 
     as_of = args.as_of or dt.date.today()
     _check_database(args.db)
@@ -181,7 +181,7 @@ def cmd_run(args: argparse.Namespace) -> int:
 
 
 def cmd_backfill(args: argparse.Namespace) -> int:
-    from flows.backfill import backfill
+    from tallywave.flows.backfill import backfill
 
     if args.end < args.start:
         raise UserError("--end is before --start")
@@ -193,9 +193,9 @@ def cmd_backfill(args: argparse.Namespace) -> int:
 
 
 def cmd_score(args: argparse.Namespace) -> int:
-    from pipeline import store
-    from pipeline.scoring import score
-    from pipeline.settings import load_settings
+    from tallywave.pipeline import store
+    from tallywave.pipeline.scoring import score
+    from tallywave.pipeline.settings import load_settings
 
     con = store.connect(args.db)
     summary = score(con, args.as_of, load_settings(args.settings))
@@ -204,8 +204,8 @@ def cmd_score(args: argparse.Namespace) -> int:
 
 
 def cmd_report(args: argparse.Namespace) -> int:
-    from pipeline import store
-    from pipeline.report import write_report
+    from tallywave.pipeline import store
+    from tallywave.pipeline.report import write_report
 
     con = store.connect(args.db, read_only=True)
     path = write_report(con, as_of=args.as_of, out_dir=args.out)
@@ -214,9 +214,9 @@ def cmd_report(args: argparse.Namespace) -> int:
 
 
 def cmd_clean(args: argparse.Namespace) -> int:
-    from pipeline import store
-    from pipeline.clean import clean
-    from pipeline.settings import load_settings
+    from tallywave.pipeline import store
+    from tallywave.pipeline.clean import clean
+    from tallywave.pipeline.settings import load_settings
 
     con = store.connect(args.db)
     as_of = args.as_of or _latest_as_of(con)
@@ -226,7 +226,7 @@ def cmd_clean(args: argparse.Namespace) -> int:
 
 
 def cmd_serve(args: argparse.Namespace) -> int:
-    from flows.daily import serve_daily
+    from tallywave.flows.daily import serve_daily
 
     serve_daily(cron=args.cron, timezone=args.timezone, db=args.db, specs=args.spec,
                 settings=args.settings, runner=args.runner, address=args.address)
@@ -234,7 +234,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    from flows.backfill import demo
+    from tallywave.flows.backfill import demo
 
     result = demo(feeds=args.feeds, db=args.db, days=args.days, settings=args.settings,
                   runner=args.runner)
@@ -263,7 +263,7 @@ def main(argv: list[str] | None = None) -> int:
     try:
         args = build_parser().parse_args(argv)
         if args.wait is not None:  # reaches every connection, the flows' included
-            from pipeline.store import LOCK_WAIT_ENV
+            from tallywave.pipeline.store import LOCK_WAIT_ENV
 
             os.environ[LOCK_WAIT_ENV] = repr(args.wait)
         return COMMANDS[args.verb](args)

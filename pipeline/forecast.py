@@ -6,8 +6,8 @@ cases, admissions and deaths of each region, warm-started from the previous run'
 ``ensemble`` (quantile average of the others).  Every model forecasts the weekday-adjusted,
 nowcast-corrected series; the quantiles are then multiplied by the weekday effect of each target
 date, so forecasts are in the same units as the reports they will be scored against.
-Mathematics: :mod:`models.baseline`, :mod:`models.renewal`, :mod:`models.compartmental`,
-:mod:`models.ensemble`.
+Mathematics: :mod:`tallywave.models.baseline`, :mod:`tallywave.models.renewal`, :mod:`tallywave.models.compartmental`,
+:mod:`tallywave.models.ensemble`.
 """
 
 from __future__ import annotations
@@ -20,15 +20,15 @@ import duckdb
 import numpy as np
 import pandas as pd
 
-from models.baseline import FlatBaseline
-from models.compartmental import CompartmentalModel
-from models.ensemble import quantile_ensemble
-from models.renewal import CoriEstimator, RenewalForecaster
-from pipeline.clean import cleaned_blocks
-from pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
-from pipeline.settings import Settings
-from pipeline.store import insert_df
-from pipeline.transmission import (
+from tallywave.models.baseline import FlatBaseline
+from tallywave.models.compartmental import CompartmentalModel
+from tallywave.models.ensemble import quantile_ensemble
+from tallywave.models.renewal import CoriEstimator, RenewalForecaster
+from tallywave.pipeline.clean import cleaned_blocks
+from tallywave.pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
+from tallywave.pipeline.settings import Settings
+from tallywave.pipeline.store import insert_df
+from tallywave.pipeline.transmission import (
     incidence_draws,
     interval_pmfs,
     median_corrected,

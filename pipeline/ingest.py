@@ -47,8 +47,8 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from pipeline.errors import UserError
-from pipeline.store import transaction
+from tallywave.pipeline.errors import UserError
+from tallywave.pipeline.store import transaction
 
 FORMATS = ("csv", "jsonl", "parquet")
 VALUE_KINDS = ("cumulative", "daily")
@@ -871,7 +871,7 @@ def ingest_spec(con: duckdb.DuckDBPyConnection, spec_path: str | Path,
         for path in files:
             summary.files.append(ingest_file(con, spec, path))
     if update_vintages:
-        from pipeline.vintages import update_observations
+        from tallywave.pipeline.vintages import update_observations
 
         update_observations(con)
     return summary

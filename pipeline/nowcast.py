@@ -3,7 +3,7 @@
 Reads ``core.observations`` (only vintages with ``as_of <= as_of``) and writes ``out.delay_pmf``,
 ``out.delay_drift``, ``out.nowcast`` and one ``out.fits`` row per region × signal (model
 ``nowcast``) saying whether the region's own delay distribution or a pooled one was used.
-Mathematics: :mod:`models.delay`.
+Mathematics: :mod:`tallywave.models.delay`.
 """
 
 from __future__ import annotations
@@ -17,11 +17,11 @@ import duckdb
 import numpy as np
 import pandas as pd
 
-from models.delay import ChainLadder, DelayGLM, DelayNowcaster, mean_delay_by_week
-from pipeline.frames import BatchFailure, Mapper, batches, serial_map
-from pipeline.settings import Settings
-from pipeline.store import insert_df
-from pipeline.vintages import vintages_as_of
+from tallywave.models.delay import ChainLadder, DelayGLM, DelayNowcaster, mean_delay_by_week
+from tallywave.pipeline.frames import BatchFailure, Mapper, batches, serial_map
+from tallywave.pipeline.settings import Settings
+from tallywave.pipeline.store import insert_df
+from tallywave.pipeline.vintages import vintages_as_of
 
 NOWCAST_LEVELS = [0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975]
 

@@ -14,8 +14,8 @@ from pathlib import Path
 import duckdb
 import pandas as pd
 
-from pipeline import store
-from pipeline.errors import UserError
+from tallywave.pipeline import store
+from tallywave.pipeline.errors import UserError
 
 _ALLOWED = {"SELECT", "EXPLAIN"}
 _LEADING = re.compile(r"^(?:\s+|--[^\n]*(?:\n|$)|/\*.*?\*/)*", re.DOTALL)

@@ -28,7 +28,7 @@ import pandas as pd
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
-from pipeline.errors import UserError
+from tallywave.pipeline.errors import UserError
 
 #: Days of history shown in the reported/nowcast and R_t panels.
 WINDOW_DAYS = 60

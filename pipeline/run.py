@@ -20,10 +20,10 @@ from typing import Any
 
 import duckdb
 
-from pipeline.errors import RunFailed, UserError
-from pipeline.frames import Mapper, serial_map
-from pipeline.settings import Settings
-from pipeline.store import transaction
+from tallywave.pipeline.errors import RunFailed, UserError
+from tallywave.pipeline.frames import Mapper, serial_map
+from tallywave.pipeline.settings import Settings
+from tallywave.pipeline.store import transaction
 
 Progress = Callable[[str], None]
 
@@ -53,10 +53,10 @@ def new_run_id(as_of: dt.date) -> str:
 
 def stages() -> list[tuple[str, Callable[..., dict]]]:
     """The stages of a run, in order (imported lazily so the CLI starts fast)."""
-    from pipeline.clean import clean
-    from pipeline.forecast import forecast
-    from pipeline.nowcast import nowcast
-    from pipeline.transmission import transmission
+    from tallywave.pipeline.clean import clean
+    from tallywave.pipeline.forecast import forecast
+    from tallywave.pipeline.nowcast import nowcast
+    from tallywave.pipeline.transmission import transmission
 
     return [("clean", clean), ("nowcast", nowcast), ("transmission", transmission),
             ("forecast", forecast)]
@@ -132,7 +132,7 @@ def execute_run(
     result = {"run_id": run_id, "as_of": as_of, "stages": summaries,
               "seconds": round(time.perf_counter() - t0, 2)}
     if score_after:
-        from pipeline.scoring import score
+        from tallywave.pipeline.scoring import score
 
         result["scoring"] = score(con, as_of, settings)
         say(f"[{as_of}] scoring: {result['scoring']['line']}")

@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from pipeline.errors import UserError
+from tallywave.pipeline.errors import UserError
 
 #: Every setting, its default and why.  The README's settings table is generated from this.
 DEFAULTS: dict[str, Any] = {

@@ -30,7 +30,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from models.outbreak import cumulative_vintage, simulate_outbreak, vintage
+from tallywave.models.outbreak import cumulative_vintage, simulate_outbreak, vintage
 
 __all__ = ["FEEDS_TOML", "write_scenario"]
 

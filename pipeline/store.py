@@ -18,7 +18,8 @@ from pathlib import Path
 import duckdb
 import pandas as pd
 
-from pipeline.errors import DatabaseBusy, UserError
+from tallywave.pipeline.accuracy import ACCURACY_VIEWS
+from tallywave.pipeline.errors import DatabaseBusy, UserError
 
 DEFAULT_DB = "tallywave.duckdb"
 
@@ -257,9 +258,5 @@ def table_names(con: duckdb.DuckDBPyConnection) -> list[str]:
 
 
 def _accuracy_views() -> list[str]:
-    # Imported lazily: the scoring stage owns the accuracy definitions.
-    try:
-        from pipeline.scoring import ACCURACY_VIEWS
-    except ImportError:  # pragma: no cover - during early bootstrap only
-        return []
+    """The accuracy views (defined beside their SQL in :mod:`tallywave.pipeline.accuracy`)."""
     return list(ACCURACY_VIEWS)

@@ -4,7 +4,7 @@ R_t is estimated with the renewal-equation method of Cori et al. (2013) over man
 recent incidence taken from this run's nowcast, and the posteriors are mixed, so the last days'
 intervals widen with the nowcast's uncertainty.  The growth rate comes from R_t through the
 Wallinga–Lipsitch (2007) relation for the discretised generation interval; doubling time is
-ln 2 / r (negative = halving time).  Mathematics: :mod:`models.renewal`.
+ln 2 / r (negative = halving time).  Mathematics: :mod:`tallywave.models.renewal`.
 """
 
 from __future__ import annotations
@@ -17,11 +17,16 @@ import numpy as np
 import pandas as pd
 from scipy import special
 
-from models.renewal import CoriEstimator, doubling_time, growth_rate_from_r, resolve_interval
-from pipeline.clean import cleaned_blocks
-from pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
-from pipeline.settings import Settings
-from pipeline.store import insert_df
+from tallywave.models.renewal import (
+    CoriEstimator,
+    doubling_time,
+    growth_rate_from_r,
+    resolve_interval,
+)
+from tallywave.pipeline.clean import cleaned_blocks
+from tallywave.pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
+from tallywave.pipeline.settings import Settings
+from tallywave.pipeline.store import insert_df
 
 RT_LEVELS = [0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975]
 #: Correlation of the nowcast draws across the reference dates of one draw: part of a nowcast's

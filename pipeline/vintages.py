@@ -20,8 +20,8 @@ import duckdb
 import numpy as np
 import pandas as pd
 
-from pipeline.frames import SeriesBlock
-from pipeline.store import transaction
+from tallywave.pipeline.frames import SeriesBlock
+from tallywave.pipeline.store import transaction
 
 #: Latest file of each snapshot row (a re-issued snapshot replaces the earlier file).
 _SNAPSHOTS = """WITH snap AS (

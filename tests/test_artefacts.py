@@ -10,7 +10,7 @@ from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 from statsmodels.tsa.seasonal import STL
 
-from models.artefacts import (
+from tallywave.models.artefacts import (
     ACTION_CODES,
     FLAG_CODES,
     ReportingRepair,

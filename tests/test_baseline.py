@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from models.baseline import FlatBaseline
-from models.ensemble import quantile_ensemble
+from tallywave.models.baseline import FlatBaseline
+from tallywave.models.ensemble import quantile_ensemble
 
 Q = [0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975]
 

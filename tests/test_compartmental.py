@@ -11,7 +11,7 @@ from scipy import stats
 from scipy.integrate import solve_ivp
 from scipy.optimize import least_squares
 
-from models.compartmental import (
+from tallywave.models.compartmental import (
     CompartmentalModel,
     expected_reports,
     gamma_delay_pmf,

@@ -20,10 +20,10 @@ from pathlib import Path
 
 import pytest
 
-from pipeline import store
-from pipeline.errors import DatabaseBusy
-from pipeline.ingest import ingest_spec
-from pipeline.simulate import write_scenario
+from tallywave.pipeline import store
+from tallywave.pipeline.errors import DatabaseBusy
+from tallywave.pipeline.ingest import ingest_spec
+from tallywave.pipeline.simulate import write_scenario
 
 ROOT = Path(__file__).resolve().parents[1]
 TALLYWAVE = shutil.which("tallywave", path=str(Path(sys.executable).parent)) or "tallywave"
@@ -34,7 +34,7 @@ COUNTED = ("raw.feed_files", "raw.reports", "core.observations", "out.runs")
 # committed when the hold ends, like a run publishing).
 HOLDER = """
 import sys, time
-from pipeline import store
+from tallywave.pipeline import store
 db, mode, seconds = sys.argv[1], sys.argv[2], float(sys.argv[3])
 con = store.connect(db, read_only=(mode == "read"), wait_s=30)
 if mode == "txn":
@@ -51,9 +51,9 @@ con.close()
 # A child that runs every stage for one date on the file, waiting up to 120 s for the lock.
 RUNNER = """
 import sys
-from pipeline import store
-from pipeline.run import execute_run
-from pipeline.settings import load_settings
+from tallywave.pipeline import store
+from tallywave.pipeline.run import execute_run
+from tallywave.pipeline.settings import load_settings
 con = store.connect(sys.argv[1], wait_s=120)
 print(execute_run(con, sys.argv[2], load_settings(sys.argv[3]), score_after=False)["run_id"])
 con.close()

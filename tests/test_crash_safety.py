@@ -24,11 +24,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from pipeline import store
-from pipeline.ingest import ingest_spec
-from pipeline.run import execute_run
-from pipeline.settings import load_settings
-from pipeline.simulate import write_scenario
+from tallywave.pipeline import store
+from tallywave.pipeline.ingest import ingest_spec
+from tallywave.pipeline.run import execute_run
+from tallywave.pipeline.settings import load_settings
+from tallywave.pipeline.simulate import write_scenario
 
 pytestmark = pytest.mark.slow
 
@@ -51,9 +51,9 @@ t0 = time.perf_counter()
 def mark(m):
     print(f"{time.perf_counter() - t0:.3f} {m}", flush=True)
 mark("start")
-from pipeline import store
-from pipeline.run import execute_run
-from pipeline.settings import load_settings
+from tallywave.pipeline import store
+from tallywave.pipeline.run import execute_run
+from tallywave.pipeline.settings import load_settings
 db, as_of, settings = sys.argv[1:4]
 con = store.connect(db, wait_s=60)
 mark("open")

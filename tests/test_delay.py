@@ -7,7 +7,7 @@ import pytest
 import statsmodels.api as sm
 from scipy import stats
 
-from models.delay import (
+from tallywave.models.delay import (
     ChainLadder,
     DelayGLM,
     DelayNowcaster,

@@ -10,9 +10,9 @@ from pathlib import Path
 import duckdb
 import pytest
 
-from pipeline import store
-from pipeline.ingest import ingest_spec
-from pipeline.simulate import write_scenario
+from tallywave.pipeline import store
+from tallywave.pipeline.ingest import ingest_spec
+from tallywave.pipeline.simulate import write_scenario
 
 PNG = b"\x89PNG\r\n\x1a\n"
 
@@ -42,7 +42,7 @@ def _settings_file(tmp_path: Path) -> str:
 
 
 def test_daily_flow_publishes_run_and_report(prefect_server, small_db, tmp_path) -> None:
-    from flows.daily import daily
+    from tallywave.flows.daily import daily
 
     base, last = small_db
     db = _copy(base, tmp_path / "t.duckdb")
@@ -70,7 +70,7 @@ def test_daily_flow_publishes_run_and_report(prefect_server, small_db, tmp_path)
 
 
 def test_dask_runner_matches_local(prefect_server, small_db, tmp_path) -> None:
-    from flows.daily import daily
+    from tallywave.flows.daily import daily
 
     base, last = small_db
     settings = _settings_file(tmp_path)
@@ -93,7 +93,7 @@ def test_dask_runner_matches_local(prefect_server, small_db, tmp_path) -> None:
 
 
 def test_serve_builds_a_scheduled_deployment(tmp_path) -> None:
-    from flows.daily import build_deployment
+    from tallywave.flows.daily import build_deployment
 
     dep = build_deployment(cron="0 7 * * *", timezone="Europe/Paris", db=str(tmp_path / "x.db"),
                            specs=["feeds.toml"])
@@ -105,8 +105,8 @@ def test_serve_builds_a_scheduled_deployment(tmp_path) -> None:
 
 
 def test_unknown_runner_is_a_user_error() -> None:
-    from flows.runners import make_task_runner
-    from pipeline.errors import UserError
+    from tallywave.flows.runners import make_task_runner
+    from tallywave.pipeline.errors import UserError
 
     with pytest.raises(UserError, match="--runner"):
         make_task_runner("gpu")

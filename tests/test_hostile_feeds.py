@@ -1,7 +1,7 @@
 """Issue "hostile feeds": every malformed input has a documented, contained outcome.
 
 Each case below is generated in the test (no hand-copied files).  A good feed is ingested first
-(template database); then the hostile file is ingested through the CLI (``pipeline.cli.main``)
+(template database); then the hostile file is ingested through the CLI (``tallywave.pipeline.cli.main``)
 and we check: the file's status in ``raw.feed_files`` (or the spec's UserError), a one-line
 message naming the file and the cause (and the line where relevant), the quarantined rows in
 ``raw.rejected_rows`` (line = physical line in the file, reason words, content verbatim), the
@@ -84,10 +84,10 @@ import duckdb
 import pandas as pd
 import pytest
 
-from pipeline import store
-from pipeline.cli import main
-from pipeline.errors import UserError
-from pipeline.ingest import ingest_spec
+from tallywave.pipeline import store
+from tallywave.pipeline.cli import main
+from tallywave.pipeline.errors import UserError
+from tallywave.pipeline.ingest import ingest_spec
 
 H = "region,date,value\n"
 OK = "Ivel,2026-01-03,2\n"  # a valid row (as_of of every hostile file is 2026-01-10)
@@ -525,8 +525,8 @@ def test_symlinked_folder_loop_lists_each_file_once(tmp_path: Path) -> None:
 _MEMORY_PROBE = """
 import resource, sys
 from pathlib import Path
-from pipeline import store
-from pipeline.ingest import ingest_spec
+from tallywave.pipeline import store
+from tallywave.pipeline.ingest import ingest_spec
 folder = Path(sys.argv[1])
 con = store.memory()
 before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss

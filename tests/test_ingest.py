@@ -19,10 +19,10 @@ import duckdb
 import pandas as pd
 import pytest
 
-from pipeline import store
-from pipeline.cli import main
-from pipeline.ingest import ingest_spec
-from pipeline.vintages import observations_as_of
+from tallywave.pipeline import store
+from tallywave.pipeline.cli import main
+from tallywave.pipeline.ingest import ingest_spec
+from tallywave.pipeline.vintages import observations_as_of
 
 D = dt.date
 
@@ -361,7 +361,7 @@ def test_cli_bad_export_target_and_missing_db(tmp_path: Path,
 
 def test_design_example_spec_loads(tmp_path: Path) -> None:
     """The design.md example spec shape loads (keys, inline tables)."""
-    from pipeline.ingest import load_spec
+    from tallywave.pipeline.ingest import load_spec
 
     p = tmp_path / "s.toml"
     p.write_text(textwrap.dedent('''

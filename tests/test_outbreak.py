@@ -16,7 +16,7 @@ import pyarrow.parquet as pq
 import pytest
 from scipy import optimize, special, stats
 
-from models.outbreak import (
+from tallywave.models.outbreak import (
     ReportingProcess,
     SeirdModel,
     TransmissionSchedule,
@@ -29,7 +29,7 @@ from models.outbreak import (
     inject_duplicate_correction,
     simulate_outbreak,
 )
-from pipeline.simulate import write_scenario
+from tallywave.pipeline.simulate import write_scenario
 
 START = dt.date(2026, 3, 2)
 

@@ -1,10 +1,10 @@
 """Acceptance tests: every stage wired together on a simulated scenario with known truth.
 
-One small invented scenario (``pipeline.simulate.write_scenario``) is written and ingested once per
+One small invented scenario (``tallywave.pipeline.simulate.write_scenario``) is written and ingested once per
 module, in two steps: first only the snapshots published on or before ``HONEST_DAY`` (that day is
 run and its outputs kept), then every snapshot, followed by a short backfill.  The tests compare
 the published tables with the scenario's truth (``truth/``): injected artefacts, eventual counts,
-reporting-delay pmfs and the true R_t.  No Prefect: ``pipeline.run.execute_run`` and the stage
+reporting-delay pmfs and the true R_t.  No Prefect: ``tallywave.pipeline.run.execute_run`` and the stage
 functions are called directly.
 """
 
@@ -23,16 +23,16 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from models.renewal import CoriEstimator, resolve_interval
-from pipeline import store
-from pipeline.errors import RunFailed
-from pipeline.forecast import _previous_params
-from pipeline.ingest import ingest_spec
-from pipeline.query import read_only_query
-from pipeline.run import execute_run
-from pipeline.scoring import score
-from pipeline.settings import Settings, load_settings
-from pipeline.simulate import write_scenario
+from tallywave.models.renewal import CoriEstimator, resolve_interval
+from tallywave.pipeline import store
+from tallywave.pipeline.errors import RunFailed
+from tallywave.pipeline.forecast import _previous_params
+from tallywave.pipeline.ingest import ingest_spec
+from tallywave.pipeline.query import read_only_query
+from tallywave.pipeline.run import execute_run
+from tallywave.pipeline.scoring import score
+from tallywave.pipeline.settings import Settings, load_settings
+from tallywave.pipeline.simulate import write_scenario
 
 START = dt.date(2026, 3, 2)  # write_scenario's default start (day index 0)
 N_REGIONS, N_DAYS, N_SNAPSHOTS, WINDOW, SEED = 10, 160, 45, 35, 11

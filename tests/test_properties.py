@@ -15,10 +15,10 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from models.artefacts import ReportingRepair, repair_series
-from pipeline import store
-from pipeline.ingest import ingest_spec
-from pipeline.vintages import observations_as_of
+from tallywave.models.artefacts import ReportingRepair, repair_series
+from tallywave.pipeline import store
+from tallywave.pipeline.ingest import ingest_spec
+from tallywave.pipeline.vintages import observations_as_of
 
 FEED_EXAMPLES = 40
 CLEAN_EXAMPLES = 60

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from models.renewal import (
+from tallywave.models.renewal import (
     CoriEstimator,
     RenewalForecaster,
     discretise_gamma_interval,

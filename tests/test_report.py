@@ -12,9 +12,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pipeline import store
-from pipeline.errors import UserError
-from pipeline.report import _bands, _trend_text, series_key, write_report
+from tallywave.pipeline import store
+from tallywave.pipeline.errors import UserError
+from tallywave.pipeline.report import _bands, _trend_text, series_key, write_report
 
 AS_OF = dt.date(2026, 5, 10)
 RUN = "2026-05-10-a1b2c3d4"

@@ -9,7 +9,7 @@ import properscoring
 import pytest
 from scipy import stats
 
-from models.scores import (
+from tallywave.models.scores import (
     FORECAST_KEY,
     bias_from_quantiles,
     central_intervals,

@@ -13,11 +13,11 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from pipeline import store
-from pipeline.cli import main
-from pipeline.errors import UserError
-from pipeline.ingest import ingest_spec
-from pipeline.query import read_only_query
+from tallywave.pipeline import store
+from tallywave.pipeline.cli import main
+from tallywave.pipeline.errors import UserError
+from tallywave.pipeline.ingest import ingest_spec
+from tallywave.pipeline.query import read_only_query
 
 INJECTED = "x'); DROP TABLE raw.reports; --"
 REGIONS = ["Quillby", INJECTED, "Ros' \"Hollow\"; DELETE FROM core.observations"]
