@@ -345,8 +345,8 @@ class ReportingRepair:
         neg_total = target < 0
 
         # exception rule: negative total → everything 0
-        for i in np.flatnonzero(neg_total):
-            for t in np.flatnonzero(reported[i] != 0):
+        for i in map(int, np.flatnonzero(neg_total)):
+            for t in map(int, np.flatnonzero(reported[i] != 0)):
                 self._log(
                     i,
                     t,

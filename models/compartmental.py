@@ -705,7 +705,7 @@ class CompartmentalModel:
         arrays = [np.atleast_2d(np.asarray(observed[s], dtype=float)) for s in signals]
         n_days = arrays[0].shape[1]
         n_reg = max(a.shape[0] for a in arrays)
-        for sig, a in zip(signals, arrays):
+        for sig, a in zip(signals, arrays, strict=True):
             if a.ndim != 2 or a.shape[1] != n_days or a.shape[0] not in (1, n_reg):
                 raise ValueError(
                     f"observed[{sig!r}] has shape {a.shape}; all signals need (n_regions, "
@@ -817,11 +817,11 @@ class CompartmentalModel:
             theta[idx], phi[idx], conv[idx], obj[idx], hess[idx], active[idx], n_iter[idx], msgs = (
                 res
             )
-            for j, r in enumerate(idx):
+            for j, r in enumerate(idx.tolist()):
                 messages[r] = msgs[j]
         all_zero = usable & (np.where(mask > 0, y, 0.0).sum(axis=(1, 2)) == 0)
         active[all_zero] = True  # no parameter uncertainty where the data carry no information
-        for r in np.flatnonzero(all_zero):
+        for r in np.flatnonzero(all_zero).tolist():
             conv[r] = False
             messages[r] = (
                 "all observations in the fit window are zero; transmission is not identifiable "
@@ -1080,7 +1080,7 @@ class CompartmentalModel:
             x0 * scale,
             jac=True,
             method="L-BFGS-B",
-            bounds=list(zip(lo * scale, hi * scale)),
+            bounds=list(zip(lo * scale, hi * scale, strict=True)),
             options={
                 "maxiter": 50 * int(self.max_iter),
                 "maxfun": 100 * int(self.max_iter),

@@ -78,7 +78,7 @@ def total_variation(p: np.ndarray, q: np.ndarray) -> np.ndarray:
     return 0.5 * np.abs(np.asarray(p, dtype=float) - np.asarray(q, dtype=float)).sum(axis=-1)
 
 
-def _safe_div(num: np.ndarray, den: np.ndarray) -> np.ndarray:
+def _safe_div(num: np.ndarray | float, den: np.ndarray) -> np.ndarray:
     """num / den with 0 where den == 0."""
     out = np.zeros(np.broadcast(num, den).shape)
     np.divide(num, den, out=out, where=den > 0)
@@ -198,7 +198,7 @@ def _poisson_ml(
         if wk is not None:
             flat = (np.arange(n)[:, None, None] * 7 + wk[None]).ravel()
             wk_tot = np.bincount(flat, weights=x.ravel(), minlength=7 * n).reshape(n, 7)
-            g = g_out[idx]
+            g = g_out[idx]  # type: ignore[index]
             cell = (np.arange(n)[:, None, None], wk[None])
         log_x = np.where(x > 0, x, 1.0)
         ll_old = np.full(n, -np.inf)
@@ -228,7 +228,7 @@ def _poisson_ml(
                 break
         p_out[idx] = p
         if g is not None:
-            g_out[idx] = g
+            g_out[idx] = g  # type: ignore[index]
         idx = idx[~done]
     return p_out, g_out, sweeps
 
@@ -420,9 +420,10 @@ class DelayGLM(_TriangleModel):
         self.pooled_pmf_ = p_pool[0]
         pmf = weight[:, None] * p_own + (1.0 - weight[:, None]) * p_pool
         self.base_pmf_ = pmf
-        weights = None
-        self.weekday_effect_ = None
+        weights: np.ndarray | None = None
+        self.weekday_effect_: np.ndarray | None = None
         if g_own is not None:
+            assert g_pool is not None and wk is not None
             g = weight[:, None] * g_own + (1.0 - weight[:, None]) * g_pool
             g = _safe_div(g, g.mean(axis=1, keepdims=True))
             self.weekday_effect_ = g
@@ -492,7 +493,7 @@ def _fit_statsmodels(
             gamma[1:] = params[n_rows + col_levels.size - 1:]
             g = np.zeros(7)
             g[wk_present] = np.exp(gamma - gamma.max())
-            g_all[i] = g / g.mean()
+            g_all[i] = g / g.mean()  # type: ignore[index]
     return pmf, g_all
 
 

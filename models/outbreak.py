@@ -289,7 +289,7 @@ class SeirdModel:
         pi = stage_exit_probability(self.infectious_days)
         names = ("S", "E1", "E2", "I1", "I2", "R", "D")
         st = {k: np.zeros((n_days + 1, n), dtype=dtype) for k in names}
-        flows = {k: np.zeros((n_days, n), dtype=dtype) for k in
+        flows: dict[str, np.ndarray] = {k: np.zeros((n_days, n), dtype=dtype) for k in
                  ("infections", "onsets", "removals", "fatal")}
         st["E1"][0] = np.asarray(seeds, dtype=dtype)
         st["S"][0] = pop - st["E1"][0]

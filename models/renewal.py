@@ -706,7 +706,7 @@ class RenewalForecaster:
         self.history_ = hist[..., hist.shape[-1] - lag :] if lag > 0 else hist[..., :0]
         self.r_samples_ = r
         self.n_draws_ = max(hist.shape[0], r.shape[0])
-        self.samples_ = None
+        self.samples_: np.ndarray | None = None
         return self
 
     def sample(self, seed: int | None = None) -> np.ndarray:
@@ -752,9 +752,10 @@ class RenewalForecaster:
         Non-negative, and monotone in q for increasing ``q_levels``.
         """
         q = _check_q_levels(q_levels)
-        if getattr(self, "samples_", None) is None:
-            self.sample()
-        out = np.moveaxis(np.quantile(self.samples_, q, axis=0), 0, -1)
+        samples = getattr(self, "samples_", None)
+        if samples is None:
+            samples = self.sample()
+        out = np.moveaxis(np.quantile(samples, q, axis=0), 0, -1)
         order = np.argsort(q)
         out[..., order] = np.maximum.accumulate(out[..., order], axis=-1)  # guard ties/round-off
         return np.maximum(out, 0.0)

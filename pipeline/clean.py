@@ -49,13 +49,15 @@ def clean(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, *,
           run_id: str, mapper: Mapper = serial_map) -> dict[str, Any]:
     """Repair every (region, signal) series known on ``as_of`` and write the audit trail."""
     blocks = observation_blocks(con, as_of, end=as_of)
-    n_actions, n_series, lines, skipped = 0, 0, [], []
+    n_actions, n_series = 0, 0
+    lines: list[str] = []
+    skipped: list[str] = []
     for signal, block in blocks.items():
         cfg = settings.for_signal(signal)
         params = repair_params(cfg)
         parts = batches(len(block.regions), int(cfg["batch_regions"]))
         results = mapper(_repair_block, [(block.take(s), params) for s in parts])
-        for part, res in zip(parts, results):
+        for part, res in zip(parts, results, strict=True):
             sub = block.take(part)
             if isinstance(res, BatchFailure):
                 skipped.extend(f"{signal}/{r}: {res.message[:200]}" for r in sub.regions)
@@ -100,7 +102,7 @@ def _cleaned_frame(run_id: str, sub: SeriesBlock, res: dict[str, Any]) -> pd.Dat
     """The core.cleaned rows of one batch (``sub.long`` plus the repair's columns)."""
     n, t = sub.values.shape
     flag = np.asarray(res["flag"], dtype=object).reshape(-1)
-    flag = np.where(flag == "", None, flag)  # '' (no flag) is stored as NULL
+    flag = np.where(flag == "", np.array(None, dtype=object), flag)  # '' (no flag) is stored as NULL
     return pd.DataFrame({
         "run_id": _codes(np.array([run_id]), n * t),
         "region": _codes(sub.regions, t),

@@ -13,6 +13,7 @@ import datetime as dt
 import os
 import sys
 from pathlib import Path
+from typing import NoReturn
 
 from tallywave.pipeline.errors import RunFailed, UserError
 
@@ -46,7 +47,7 @@ def _check_database(db: str | None) -> None:
 
 
 class _Parser(argparse.ArgumentParser):
-    def error(self, message: str) -> None:  # one line, exit 2, like every other user error
+    def error(self, message: str) -> NoReturn:  # one line, exit 2, like every other user error
         raise UserError(f"{self.prog}: {message}")
 
 

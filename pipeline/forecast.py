@@ -126,7 +126,7 @@ def _weekday_factors(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
 def _populations(con: duckdb.DuckDBPyConnection, regions: np.ndarray) -> tuple[np.ndarray,
                                                                                 np.ndarray]:
     df = con.execute("SELECT region, population FROM core.regions").df()
-    known = dict(zip(df["region"], df["population"]))
+    known = dict(zip(df["region"], df["population"], strict=True))
     pop = np.array([float(known.get(r, np.nan)) for r in regions])
     missing = ~np.isfinite(pop) | (pop <= 0)
     return np.where(missing, DEFAULT_POPULATION, pop), missing
@@ -240,10 +240,10 @@ def _renewal_fits(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
                   block: SeriesBlock, parts: list[slice], res: list) -> None:
     """One out.fits row per region: where the projected R_t came from."""
     rows = []
-    for s, r in zip(parts, res):
+    for s, r in zip(parts, res, strict=True):
         if isinstance(r, BatchFailure):
             continue
-        for region, src, med in zip(block.regions[s], r["source"], r["r_median"]):
+        for region, src, med in zip(block.regions[s], r["source"], r["r_median"], strict=True):
             msg = {"own": "R_t of the region itself",
                    "pooled": "too few counts for its own R_t: R_t of the pooled regions used",
                    "none": "too few counts, no renewal forecast"}[src]
@@ -263,7 +263,7 @@ def _stack(res: list, parts: list[slice], block: SeriesBlock, cfg: dict, skipped
     """Join batch results; failed batches become NaN and are recorded as skipped."""
     h, k = int(cfg["horizon_days"]), len(cfg["quantiles"])
     out = np.full((len(block.regions), h, k), np.nan)
-    for s, r in zip(parts, res):
+    for s, r in zip(parts, res, strict=True):
         if isinstance(r, BatchFailure):
             skipped.extend(f"{model}/{signal}/{x}: {r.message[:200]}" for x in block.regions[s])
         else:
@@ -302,7 +302,7 @@ def _run_compartmental(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings:
     h, k = int(cfg["horizon_days"]), len(cfg["quantiles"])
     per_signal = {s: np.full((len(regions), h, k), np.nan) for s in sigs}
     n_conv = 0
-    for p, r in zip(parts, res):
+    for p, r in zip(parts, res, strict=True):
         regs = regions[p]
         if isinstance(r, BatchFailure):
             skipped.extend(f"compartmental/{x}: {r.message[:200]}" for x in regs)
@@ -315,7 +315,7 @@ def _run_compartmental(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings:
         conv = np.asarray(r["converged"], dtype=bool)
         n_conv += int(conv.sum())
         msgs = [m + ("; population unknown, 1,000,000 assumed" if pm else "")
-                for m, pm in zip(r["message"], pop_missing[p])]
+                for m, pm in zip(r["message"], pop_missing[p], strict=True)]
         fits.append(pd.DataFrame({
             "region": regs, "params_json": [json.dumps(x) for x in _per_region(r["params"],
                                                                                 len(regs))],

@@ -738,8 +738,8 @@ def ingest_file(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path) -> F
             parsed = _parse(con, spec, path)
             _validate(con, spec, as_of)
         except duckdb.Error as exc:
-            first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-            raise UserError(f"{path}: cannot parse as {spec.format} ({first[:200]})") from exc
+            why = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+            raise UserError(f"{path}: cannot parse as {spec.format} ({why[:200]})") from exc
     except UserError as exc:
         out.message = str(exc)
         return _record_failed(con, spec, path, sha, as_of, out)
@@ -751,7 +751,7 @@ def ingest_file(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path) -> F
     out.rows_accepted = int(n_ok)
     out.rows_rejected = int(n_bad) + len(parser_rejects)
     out.rows_read = out.rows_accepted + out.rows_rejected
-    first = None
+    first: tuple | None = None
     if out.rows_rejected:  # the earliest quarantined line, whichever check refused it
         first = _first(con, "SELECT line_no, reason FROM _checked WHERE reason IS NOT NULL "
                        "ORDER BY line_no LIMIT 1")
@@ -759,6 +759,8 @@ def ingest_file(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path) -> F
             i = int(np.argmin(parser_rejects["line_no"].to_numpy()))
             pr = (int(parser_rejects["line_no"].iloc[i]), parser_rejects["reason"].iloc[i])
             first = pr if first is None or pr[0] < first[0] else first
+    if first is None:
+        first = (0, "unknown")
     if out.rows_read == 0:
         out.status, out.message = "empty", f"{path}: no data rows"
     elif out.rows_accepted == 0:

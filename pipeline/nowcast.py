@@ -158,8 +158,8 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
         jobs = [(Triangle(signal, tri.regions[s], tri.dates, tri.cells[s], tri.latest[s]), cfg,
                  int(cfg["seed"]) + i) for i, s in enumerate(parts)]
         results = mapper(_fit_block, jobs)
-        good = [(s, r) for s, r in zip(parts, results) if not isinstance(r, BatchFailure)]
-        for s, r in zip(parts, results):
+        good = [(s, r) for s, r in zip(parts, results, strict=True) if not isinstance(r, BatchFailure)]
+        for s, r in zip(parts, results, strict=True):
             if isinstance(r, BatchFailure):
                 skipped.extend(f"{signal}/{x}: {r.message[:200]}" for x in tri.regions[s])
         if not good:
@@ -209,11 +209,11 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
                                         "family": cfg["nowcast_family"],
                                         "mean_delay_days": float(np.sum(np.arange(D + 1) * row))
                                         if ok else None})
-                            for p, row, ok in zip(pooling, pmf, usable)],
+                            for p, row, ok in zip(pooling, pmf, usable, strict=True)],
             "objective": np.nan, "converged": usable,
             "message": [f"delay distribution: {p}" if ok else
                         "too little reporting history to estimate delays; nowcast = reported"
-                        for p, ok in zip(pooling, usable)], "signal": signal}))
+                        for p, ok in zip(pooling, usable, strict=True)], "signal": signal}))
         lines.append(f"{signal}: {n_reg} regions ({int(np.sum(pooling != 'own'))} pooled/shrunk)")
     out = {"line": "; ".join(lines) or "no signals", "rows": n_written}
     if skipped:

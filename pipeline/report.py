@@ -368,12 +368,12 @@ def _panel_counts(ax: Any, cleaned: pd.DataFrame | None, nowcast: pd.DataFrame |
                   as_of: dt.date, signal: str) -> None:
     title = f"(a) reported {_mpl(signal)} vs nowcast"
     nb = _bands(nowcast, "ref_date")
-    has_rep = cleaned is not None and cleaned["value_reported"].notna().any()
+    has_rep = cleaned is not None and bool(cleaned["value_reported"].notna().any())
     if not has_rep and nb is None:
         _no_data(ax, title)
         return
     _style(ax, title)
-    if has_rep:
+    if has_rep and cleaned is not None:
         # one LineCollection instead of a bar patch per day (much faster to draw)
         ax.vlines(cleaned["ref_date"].to_numpy(), 0, cleaned["value_reported"].to_numpy(float),
                   color="#b9c3ca", lw=2.6, label="reported")
@@ -387,7 +387,7 @@ def _panel_counts(ax: Any, cleaned: pd.DataFrame | None, nowcast: pd.DataFrame |
 def _panel_rt(ax: Any, rt: pd.DataFrame | None) -> None:
     title = "(b) R_t with 50% / 90% intervals"
     b = _bands(rt, "ref_date")
-    if b is None:
+    if b is None or rt is None:
         _no_data(ax, title)
         return
     _style(ax, title)
@@ -412,12 +412,12 @@ def _panel_rt(ax: Any, rt: pd.DataFrame | None) -> None:
 def _panel_forecast(ax: Any, fc: pd.DataFrame | None, cleaned: pd.DataFrame | None,
                     as_of: dt.date) -> None:
     title = "(c) forecasts by model"
-    has_rep = cleaned is not None and cleaned["value_reported"].notna().any()
+    has_rep = cleaned is not None and bool(cleaned["value_reported"].notna().any())
     if (fc is None or fc.empty) and not has_rep:
         _no_data(ax, title)
         return
     _style(ax, title)
-    if has_rep:
+    if has_rep and cleaned is not None:
         recent = cleaned[cleaned["ref_date"] > pd.Timestamp(as_of) -
                          pd.Timedelta(days=FORECAST_CONTEXT_DAYS)]
         ax.plot(recent["ref_date"].to_numpy(), recent["value_reported"].to_numpy(float), "o",

@@ -85,7 +85,7 @@ def execute_run(
 
     ``_fail_in`` (tests only) raises inside the named stage to prove atomicity.
     """
-    requested = _as_date(as_of)
+    requested: dt.date = _as_date(as_of)
     say = progress or (lambda _msg: None)
     latest = con.execute("SELECT max(as_of) FROM core.observations WHERE as_of <= ?",
                          [requested]).fetchall()[0][0]
@@ -94,11 +94,11 @@ def execute_run(
                         "(or pick a later --as-of)")
     # A run describes the newest data it has: when no feed published on the requested date, the
     # run is made as of the latest snapshot (and says so) rather than inventing empty days.
-    as_of = min(requested, latest)
-    if as_of < requested:
-        say(f"no data published after {as_of}: running as of {as_of} "
-            f"({(requested - as_of).days} day(s) before {requested})")
-    run_id = new_run_id(as_of)
+    day: dt.date = min(requested, latest)
+    if day < requested:
+        say(f"no data published after {day}: running as of {day} "
+            f"({(requested - day).days} day(s) before {requested})")
+    run_id = new_run_id(day)
     started = dt.datetime.now()
     summaries: dict[str, Any] = {}
     t0 = time.perf_counter()
@@ -106,37 +106,37 @@ def execute_run(
         with transaction(con):
             for name, fn in stages():
                 t = time.perf_counter()
-                say(f"[{as_of}] {name} ...")
+                say(f"[{day}] {name} ...")
                 if _fail_in == name:
                     raise RuntimeError(f"injected failure in stage {name}")
-                summaries[name] = fn(con, as_of, settings, run_id=run_id, mapper=mapper)
+                summaries[name] = fn(con, day, settings, run_id=run_id, mapper=mapper)
                 summaries[name]["seconds"] = round(time.perf_counter() - t, 3)
-                say(f"[{as_of}] {name}: {summaries[name].get('line', 'done')} "
+                say(f"[{day}] {name}: {summaries[name].get('line', 'done')} "
                     f"({summaries[name]['seconds']:.1f} s)")
             skipped = {k: v.get("skipped") for k, v in summaries.items() if v.get("skipped")}
             con.execute("UPDATE out.runs SET status = 'superseded' "
-                        "WHERE as_of = ? AND status = 'published'", [as_of])
+                        "WHERE as_of = ? AND status = 'published'", [day])
             con.execute(
                 "INSERT INTO out.runs VALUES (?, ?, ?, now(), 'published', ?, ?, ?, ?)",
-                [run_id, as_of, started, settings.to_json(), code_version(),
+                [run_id, day, started, settings.to_json(), code_version(),
                  json.dumps(skipped, default=str) if skipped else None,
                  "; ".join(f"{k}: {v.get('line', '')}" for k, v in summaries.items())],
             )
     except (UserError, RunFailed):
-        _record_failure(con, run_id, as_of, started, settings, "stopped by a user error")
+        _record_failure(con, run_id, day, started, settings, "stopped by a user error")
         raise
     except Exception as exc:
         msg = f"{type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''}"
-        _record_failure(con, run_id, as_of, started, settings, msg)
+        _record_failure(con, run_id, day, started, settings, msg)
         raise RunFailed(f"run {run_id} failed, nothing published ({msg[:300]})") from exc
-    result = {"run_id": run_id, "as_of": as_of, "stages": summaries,
+    result: dict[str, Any] = {"run_id": run_id, "as_of": day, "stages": summaries,
               "seconds": round(time.perf_counter() - t0, 2)}
     if score_after:
         from tallywave.pipeline.scoring import score
 
-        result["scoring"] = score(con, as_of, settings)
-        say(f"[{as_of}] scoring: {result['scoring']['line']}")
-    result["line"] = (f"published run {run_id} (as of {as_of}) in {result['seconds']:.1f} s: "
+        result["scoring"] = score(con, day, settings)
+        say(f"[{day}] scoring: {result['scoring']['line']}")
+    result["line"] = (f"published run {run_id} (as of {day}) in {result['seconds']:.1f} s: "
                       + "; ".join(f"{k} {v.get('line', '')}" for k, v in summaries.items()))
     return result
 

@@ -116,7 +116,7 @@ def _check_value(key: str, value: Any, where: str) -> Any:
             qs = sorted(float(q) for q in value)
             if any(not 0 < q < 1 for q in qs) or 0.5 not in qs:
                 raise UserError(f"{where}: quantiles must lie in (0, 1) and include 0.5")
-            if any(abs(a + b - 1) > 1e-9 for a, b in zip(qs, reversed(qs))):
+            if any(abs(a + b - 1) > 1e-9 for a, b in zip(qs, reversed(qs), strict=True)):
                 raise UserError(f"{where}: quantiles must come in symmetric pairs around 0.5")
             return qs
         return value

@@ -178,7 +178,7 @@ def write_scenario(
     feed_bytes += _write(out / "feeds.toml", FEEDS_TOML)
     files.append("feeds.toml")
     feed_bytes += _write(out / "regions.csv", "district,population\n" + "".join(
-        f"{name},{int(pop)}\n" for name, pop in zip(sc.names, sc.populations)))
+        f"{name},{int(pop)}\n" for name, pop in zip(sc.names, sc.populations, strict=True)))
     files.append("regions.csv")
     truth_rows = _write_truth(out / "truth", sc, days, start_date)
     files += [f"truth/{name}" for name in _TRUTH_FILES]

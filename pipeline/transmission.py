@@ -214,7 +214,9 @@ def _estimate_block(args: tuple) -> dict[str, Any]:
 def transmission(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, *,
                  run_id: str, mapper: Mapper = serial_map) -> dict[str, Any]:
     """Estimate R_t and growth for every region × signal with enough counts."""
-    lines, n_rows, skipped = [], 0, []
+    lines: list[str] = []
+    skipped: list[str] = []
+    n_rows = 0
     since = as_of - dt.timedelta(days=history_days(settings) - 1)
     blocks = cleaned_blocks(con, run_id, adjusted=bool(settings.get("use_weekday_adjusted")),
                             since=since)
@@ -235,7 +237,7 @@ def transmission(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Setti
         # a day depends on the nowcast when its window reaches into the last n_nc days
         dependent = dates > (np.datetime64(as_of, "D") - np.timedelta64(n_nc + window - 1, "D"))
         n_est = 0
-        for part, res in zip(parts, results):
+        for part, res in zip(parts, results, strict=True):
             regions = block.regions[part]
             if isinstance(res, BatchFailure):
                 skipped.extend(f"{signal}/{r}: {res.message[:200]}" for r in regions)

@@ -55,7 +55,7 @@ def test_quick_benchmark_prints_every_stage(tmp_path, capsys) -> None:
     for ln in lines[1:]:
         cells = [c.strip() for c in ln.strip().strip("|").split("|")]
         assert len(cells) == len(COLUMNS), ln
-        rows[cells[0]] = dict(zip(COLUMNS, cells))
+        rows[cells[0]] = dict(zip(COLUMNS, cells, strict=True))
     for prefix in STAGES:
         found = [name for name in rows if name.startswith(prefix)]
         assert found, f"no row for stage {prefix!r}; rows: {list(rows)}"

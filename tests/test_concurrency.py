@@ -227,7 +227,7 @@ def test_two_runs_started_at_once_both_publish_in_turn(db, base) -> None:
     procs = [subprocess.Popen(args, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
                               env=_env()) for _ in range(2)]
     outs = [p.communicate(timeout=300) for p in procs]
-    for p, (out, err) in zip(procs, outs, strict=True):
+    for p, (_out, err) in zip(procs, outs, strict=True):
         assert p.returncode == 0, err[-2000:]
     run_ids = [out.strip().splitlines()[-1] for out, _ in outs]
     con = store.connect(db, wait_s=30)

@@ -452,7 +452,7 @@ def test_hostile_feed(case: Case, template_db: tuple[Path, int], tmp_path: Path,
         rejected = con.execute("SELECT line_no, content, reason FROM raw.rejected_rows "
                                "WHERE file_id = ? ORDER BY line_no", [fid]).fetchall()
         assert [r[0] for r in rejected] == [r[0] for r in case.rejected]
-        for (line, content, reason), (want_line, want_reason, want_content) in zip(
+        for (line, content, reason), (_want_line, want_reason, want_content) in zip(
                 rejected, case.rejected, strict=True):
             assert want_reason.lower() in reason.lower(), (line, reason)
             assert "\n" not in reason

@@ -458,7 +458,7 @@ def test_forecasts_complete_and_well_formed(world: World) -> None:
                   bool_and(issued_on = ?) AS issued
            FROM out.forecasts WHERE run_id = ? GROUP BY ALL ORDER BY ALL""",
         [day(LAST_DAY), run_id]).df()
-    assert list(zip(per["model"], per["signal"])) == [(m, s) for m in MODELS for s in SIGNALS]
+    assert list(zip(per["model"], per["signal"], strict=True)) == [(m, s) for m in MODELS for s in SIGNALS]
     assert (per["n_regions"] == N_REGIONS).all()
     assert (per["h1"] == 1).all() and (per["h2"] == 28).all() and (per["n_q"] == 9).all()
     assert (per["n"] == N_REGIONS * 28 * 9).all()
@@ -516,7 +516,7 @@ def test_compartmental_fits_and_warm_start(world: World) -> None:
     assert len(prev) > 0
     regions = np.asarray(fits["region"])
     got = _previous_params(con, day(HONEST_DAY + 1), regions)
-    expected = dict(zip(prev["region"], prev["params_json"].map(json.loads)))
+    expected = dict(zip(prev["region"], prev["params_json"].map(json.loads), strict=True))
     assert got == [expected.get(r) for r in regions]
 
 
@@ -630,7 +630,7 @@ def test_scoring_against_settled_truth_and_revisions(world: World) -> None:
         score(con, None, s)
         new = con.execute(row_sql, key).fetchall()
         assert len(new) == len(old) > 0
-        for (t0, w0, _), (t1, w1, a1) in zip(old, new):
+        for (t0, w0, _), (t1, w1, a1) in zip(old, new, strict=True):
             assert t0 == old_truth and t1 == old_truth + 40.0 and a1 == latest
             assert w1 != w0
     finally:

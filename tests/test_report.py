@@ -64,7 +64,7 @@ def populate(con, seed: int = 7) -> None:
     }))
     cleaned, nowcast, rt, growth, fc, drift = [], [], [], [], [], []
     for i, region in enumerate(REGIONS):
-        for j, signal in enumerate(SIGNALS):
+        for _j, signal in enumerate(SIGNALS):
             key = (region, signal)
             days = _days(AS_OF, 90)
             level = (200.0 if signal == "cases" else 20.0) * (1 + i)
