@@ -707,11 +707,12 @@ def _stage_limits(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Any,
     from scipy import signal as sps
 
     from tallywave.models.compartmental import CompartmentalModel
+    from tallywave.models.incidence import median_corrected
     from tallywave.models.renewal import CoriEstimator
     from tallywave.pipeline.clean import cleaned_blocks
     from tallywave.pipeline.frames import to_blocks
-    from tallywave.pipeline.nowcast import build_triangles
-    from tallywave.pipeline.transmission import interval_pmfs, median_corrected, nowcast_quantiles
+    from tallywave.pipeline.nowcast import build_triangles, nowcast_quantiles
+    from tallywave.pipeline.transmission import interval_pmfs
     from tallywave.pipeline.vintages import observations_as_of, vintages_as_of
 
     by = {r.stage: r for r in rows}

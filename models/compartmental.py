@@ -25,7 +25,9 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy import optimize, special, stats
+from scipy import optimize, special
+
+from tallywave.models.distributions import gamma_delay_pmf
 
 SIGNALS: tuple[str, ...] = ("cases", "admissions", "deaths")
 DEFAULT_QUANTILES: tuple[float, ...] = (0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975)
@@ -41,31 +43,6 @@ _LOG_DISP_BOUNDS = (math.log(0.3), math.log(1e4))
 # --------------------------------------------------------------------------------------------
 # Transmission model
 # --------------------------------------------------------------------------------------------
-
-
-def gamma_delay_pmf(
-    mean: float, sd: float, max_days: int | None = None, tail: float = 1e-3
-) -> np.ndarray:
-    """Gamma delay discretised to whole days: pmf[d] = P(d <= X < d+1), d = 0..L-1, renormalised.
-
-    L is ``max_days`` or, by default, one more than the ``1 - tail`` quantile, so the truncated
-    tail mass is below ``tail`` before renormalising.
-    """
-    if not (mean > 0 and sd > 0 and math.isfinite(mean) and math.isfinite(sd)):
-        raise ValueError(f"delay mean and sd must be positive and finite, got {mean}, {sd}")
-    shape = (mean / sd) ** 2
-    scale = sd**2 / mean
-    if max_days is None:
-        max_days = math.ceil(stats.gamma.ppf(1.0 - tail, shape, scale=scale)) + 1
-    max_days = max(int(max_days), 1)
-    cdf = stats.gamma.cdf(np.arange(max_days + 1, dtype=float), shape, scale=scale)
-    pmf = np.diff(cdf)
-    total = pmf.sum()
-    if not total > 0:
-        pmf = np.zeros(max_days)
-        pmf[min(round(mean), max_days - 1)] = 1.0
-        return pmf
-    return pmf / total
 
 
 def seird_rhs(

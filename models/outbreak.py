@@ -43,7 +43,9 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import special, stats
+from scipy import special
+
+from tallywave.models.distributions import gamma_delay_pmf
 
 __all__ = [
     "EpidemicPath",
@@ -53,9 +55,9 @@ __all__ = [
     "TransmissionSchedule",
     "artefact_window",
     "cumulative_vintage",
-    "discretised_gamma_pmf",
     "draw_populations",
     "final_size",
+    "gamma_delay_pmf",
     "generation_interval_pmf",
     "gravity_mixing",
     "inject_backlog_dump",
@@ -122,14 +124,6 @@ def gravity_mixing(
     w *= outside_share / w.sum(axis=1, keepdims=True)
     w[np.diag_indices(n)] = 1.0 - outside_share
     return w
-
-
-def discretised_gamma_pmf(mean: float, sd: float, max_days: int) -> np.ndarray:
-    """pmf on 0..max_days of floor(X) for X ~ gamma(mean, sd), truncated and renormalised."""
-    shape = (mean / sd) ** 2
-    cdf = stats.gamma.cdf(np.arange(max_days + 2), a=shape, scale=mean / shape)
-    pmf = np.diff(cdf)
-    return pmf / pmf.sum()
 
 
 def final_size(r0: float, s0: float = 1.0) -> float:
@@ -366,16 +360,16 @@ class ReportingProcess:
     def delay_pmfs(self) -> dict[str, np.ndarray]:
         """Reporting-delay pmf (index = days from reference date to report) per signal."""
         return {
-            "cases": discretised_gamma_pmf(*self.case_delay),
-            "admissions": discretised_gamma_pmf(*self.admission_delay),
-            "deaths": discretised_gamma_pmf(*self.death_delay),
+            "cases": gamma_delay_pmf(*self.case_delay),
+            "admissions": gamma_delay_pmf(*self.admission_delay),
+            "deaths": gamma_delay_pmf(*self.death_delay),
         }
 
     def clinical_pmfs(self) -> dict[str, np.ndarray]:
         """Lags from the epidemic event to the reference date (onset->admission, removal->death)."""
         return {
-            "onset_to_admission": discretised_gamma_pmf(*self.onset_to_admission),
-            "removal_to_death": discretised_gamma_pmf(*self.removal_to_death),
+            "onset_to_admission": gamma_delay_pmf(*self.onset_to_admission),
+            "removal_to_death": gamma_delay_pmf(*self.removal_to_death),
         }
 
     def weekend_shift(

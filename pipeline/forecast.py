@@ -23,18 +23,14 @@ import pandas as pd
 from tallywave.models.baseline import FlatBaseline
 from tallywave.models.compartmental import CompartmentalModel
 from tallywave.models.ensemble import quantile_ensemble
+from tallywave.models.incidence import incidence_draws, median_corrected
 from tallywave.models.renewal import CoriEstimator, RenewalForecaster
 from tallywave.pipeline.clean import cleaned_blocks
 from tallywave.pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
+from tallywave.pipeline.nowcast import nowcast_quantiles
 from tallywave.pipeline.settings import Settings
 from tallywave.pipeline.store import insert_df
-from tallywave.pipeline.transmission import (
-    incidence_draws,
-    interval_pmfs,
-    median_corrected,
-    nowcast_quantiles,
-    rt_span,
-)
+from tallywave.pipeline.transmission import interval_pmfs, nowcast_draws_for, rt_span
 
 COMPARTMENTAL_SIGNALS = ("cases", "admissions", "deaths")
 RENEWAL_HISTORY_DAYS = 90
@@ -60,8 +56,7 @@ def _renewal_job(args: tuple) -> dict[str, Any]:
     """Renewal forecasts for one batch: R_t draws at the last day (mixed over nowcast draws)
     projected forward; a region too small for its own R_t uses the R_t of the batch's regions
     pooled (their summed incidence), and says so."""
-    values, levels, q, rep, start, cfg, seed = args
-    rng = np.random.default_rng(seed)
+    values, eventual, rep, start, cfg, seed = args
     # Only the last days matter: the last day's R_t (its window and the interval before it),
     # the projection's lags (shorter) and the nowcast window; older days change nothing.
     need = max(rt_span(cfg), values.shape[1] - start)
@@ -69,7 +64,9 @@ def _renewal_job(args: tuple) -> dict[str, Any]:
     cut = values.shape[1] - t_keep
     values = np.nan_to_num(values[:, cut:])
     n_draws = int(cfg["forecast_draws"])
-    draws = incidence_draws(values, levels, q, rep, start - cut, n_draws, rng)
+    # the nowcast's joint draws, reused cyclically when fewer than n_draws were kept
+    eventual = eventual[np.arange(n_draws) % max(eventual.shape[0], 1)]
+    draws = incidence_draws(values, eventual, rep, start - cut)
     pmfs = interval_pmfs(cfg)
     interval = pmfs if len(pmfs) > 1 else pmfs[0]
     r = _cori(cfg).fit_draws(draws, interval).sample(n_draws, day=-1, seed=seed)
@@ -198,8 +195,9 @@ def forecast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings,
             results.setdefault("baseline", {})[signal] = _stack(res, parts, block, cfg,
                                                                skipped, "baseline", signal)
         if "renewal" in wanted:
-            levels, q, rep, start = nq
-            res = mapper(_renewal_job, [(np.nan_to_num(block.values[s]), levels, q[s], rep[s],
+            eventual, rep, start = nowcast_draws_for(con, run_id, signal, block,
+                                                     int(cfg["forecast_draws"]), seed)
+            res = mapper(_renewal_job, [(np.nan_to_num(block.values[s]), eventual[:, s], rep[s],
                                          start, cfg, seed + i) for i, s in enumerate(parts)])
             _renewal_fits(con, run_id, signal, block, parts, res)
             res = [r if isinstance(r, BatchFailure) else r["q"] for r in res]

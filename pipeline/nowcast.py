@@ -18,12 +18,18 @@ import numpy as np
 import pandas as pd
 
 from tallywave.models.delay import ChainLadder, DelayGLM, DelayNowcaster, mean_delay_by_week
-from tallywave.pipeline.frames import BatchFailure, Mapper, batches, serial_map
+from tallywave.pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
 from tallywave.pipeline.settings import Settings
 from tallywave.pipeline.store import insert_df
 from tallywave.pipeline.vintages import vintages_as_of
 
 NOWCAST_LEVELS = [0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975]
+
+#: Joint predictive draws of the eventual counts of the nowcast window, handed to the R_t and
+#: forecast stages of the same run (a connection-scoped temporary table: large, and only
+#: meaningful inside the run; ``out.nowcast`` holds the published quantiles).
+DRAWS_DDL = ("CREATE OR REPLACE TEMP TABLE nowcast_draws (region VARCHAR, signal VARCHAR, "
+             "ref_date DATE, draw INTEGER, value DOUBLE)")
 
 
 @dataclass
@@ -128,10 +134,17 @@ def _fit_block(args: tuple[Triangle, dict[str, Any], int]) -> dict[str, Any]:
                          pool_below=float(cfg["nowcast_pool_below"]))
     nc = DelayNowcaster(model=model, family=cfg["nowcast_family"]).fit(tri.cells,
                                                                       reported=tri.latest)
-    q = nc.quantiles(NOWCAST_LEVELS, n_draws=int(cfg["nowcast_draws"]), rng=rng)
+    # one set of joint draws gives both the published quantiles and the draws handed on to R_t
+    # and the forecasts, so both describe the same predictive distribution
+    draws = nc.sample(int(cfg["nowcast_draws"]), rng=rng)  # (m, n, n_ref)
+    q = np.moveaxis(np.quantile(draws, NOWCAST_LEVELS, axis=0), 0, -1)
+    q = np.maximum.accumulate(q, axis=-1)
+    keep = min(int(cfg["nowcast_joint_draws"]), draws.shape[0])
+    joint = np.ascontiguousarray(np.moveaxis(draws[:keep, :, -(D + 1):], 0, -1))
     weekly = mean_delay_by_week(tri.cells)
     return {"pmf": nc.delay_pmf_, "q": q, "pooling": np.asarray(nc.pooling_, dtype=str),
-            "drift": (weekly.mean_delay, tri.dates[weekly.week_first_row])}
+            "drift": (weekly.mean_delay, tri.dates[weekly.week_first_row]),
+            "draws": joint.astype(np.float32)}
 
 
 def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, *,
@@ -143,6 +156,7 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
     n_written = 0
     lines: list[str] = []
     skipped: list[str] = []
+    con.execute(DRAWS_DDL)
     for signal in sorted(firsts):
         cfg = settings.for_signal(signal)
         D = int(cfg["max_delay_days"])
@@ -169,6 +183,7 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
                        tri.latest[keep_rows])
         pmf = np.concatenate([r["pmf"] for _, r in good])
         q = np.concatenate([r["q"] for _, r in good])
+        joint = np.concatenate([r["draws"] for _, r in good])  # (n, D+1, m)
         pooling = np.concatenate([r["pooling"] for _, r in good])
         drift_dates = good[0][1]["drift"][1]
         drift = np.concatenate([r["drift"][0] for _, r in good])
@@ -198,6 +213,8 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
         qk = np.maximum(qk, reported[..., None])
         k = len(NOWCAST_LEVELS)
         t = len(dates)
+        joint = np.where(usable[:, None, None], joint, reported[..., None])
+        _write_draws(con, signal, tri.regions, dates, np.maximum(joint, reported[..., None]))
         n_written += insert_df(con, "out.nowcast", pd.DataFrame({
             "run_id": run_id, "region": np.repeat(tri.regions, t * k), "signal": signal,
             "ref_date": np.tile(np.repeat(dates, k), n_reg),
@@ -218,4 +235,90 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
     out = {"line": "; ".join(lines) or "no signals", "rows": n_written}
     if skipped:
         out["skipped"] = skipped
+    return out
+
+
+def _write_draws(con: duckdb.DuckDBPyConnection, signal: str, regions: np.ndarray,
+                 dates: np.ndarray, joint: np.ndarray) -> None:
+    """Append one signal's joint draws (n, t, m) to the run's ``nowcast_draws`` table."""
+    n, t, m = joint.shape
+    if n * t * m == 0:
+        return
+    codes = np.repeat(np.arange(n), t * m)
+    insert_df(con, "nowcast_draws", pd.DataFrame({
+        "region": pd.Categorical.from_codes(codes, categories=pd.Index(regions.astype(str))),
+        "signal": signal,
+        "ref_date": np.tile(np.repeat(np.asarray(dates, dtype="datetime64[D]"), m), n),
+        "draw": np.tile(np.arange(m, dtype=np.int32), n * t),
+        "value": joint.reshape(-1).astype(float)}))
+
+
+def _filled(a: np.ndarray) -> np.ndarray:
+    """A fetched numeric column as floats with NULL as NaN."""
+    return np.ma.filled(a.astype(float), np.nan) if np.ma.isMaskedArray(a) else a.astype(float)
+
+
+def _region_positions(con: duckdb.DuckDBPyConnection, sql: str, params: list,
+                      regions: np.ndarray) -> dict[str, np.ndarray]:
+    """Run ``sql`` (which selects from a table aliased ``n`` with a ``region`` column) joined to
+    the positions of ``regions``; DuckDB finds the positions, only numbers come back."""
+    con.register("_nq_regions", pd.DataFrame({"region": regions, "r": np.arange(len(regions))}))
+    try:
+        return con.execute(sql.replace("{join}", "LEFT JOIN _nq_regions g USING (region)"),
+                           params).fetchnumpy()
+    finally:
+        con.unregister("_nq_regions")
+
+
+def nowcast_quantiles(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
+                      block: SeriesBlock) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
+    """This run's published nowcast as arrays aligned to ``block``: levels (k,), quantiles
+    (n, t, k), reported (n, t) and the column where the nowcast window starts in the block."""
+    got = _region_positions(
+        con, "SELECT coalesce(g.r, -1) AS r, n.ref_date, n.q_level, n.value, n.reported "
+             "FROM out.nowcast n {join} WHERE n.run_id = ? AND n.signal = ?",
+        [run_id, signal], block.regions)
+    n_reg = len(block.regions)
+    if len(got["r"]) == 0:
+        return np.array([0.5]), np.zeros((n_reg, 0, 1)), np.zeros((n_reg, 0)), len(block.dates)
+    ref = np.asarray(got["ref_date"]).astype("datetime64[D]")
+    q_level = _filled(got["q_level"])
+    levels = np.unique(q_level)
+    dates = np.unique(ref)
+    q = np.full((n_reg, len(dates), len(levels)), np.nan)
+    rep = np.full((n_reg, len(dates)), np.nan)
+    r_idx = np.asarray(got["r"], dtype=np.int64)
+    ok = r_idx >= 0
+    t_idx = np.searchsorted(dates, ref)
+    l_idx = np.searchsorted(levels, q_level)
+    q[r_idx[ok], t_idx[ok], l_idx[ok]] = _filled(got["value"])[ok]
+    rep[r_idx[ok], t_idx[ok]] = _filled(got["reported"])[ok]
+    start = int(np.searchsorted(block.dates, dates[0]))
+    return levels, q, rep, start
+
+
+def nowcast_joint_draws(con: duckdb.DuckDBPyConnection, signal: str, block: SeriesBlock,
+                        dates: np.ndarray) -> np.ndarray | None:
+    """This run's joint nowcast draws (m, n, t) aligned to ``block.regions`` and ``dates``
+    (NaN where a region has none), or None when the nowcast stage did not run on this
+    connection (then callers fall back to the published quantiles)."""
+    exists = con.execute("SELECT count(*) FROM duckdb_tables() WHERE temporary "
+                         "AND table_name = 'nowcast_draws'").fetchall()[0][0]
+    if not exists or len(dates) == 0:
+        return None
+    got = _region_positions(
+        con, "SELECT coalesce(g.r, -1) AS r, n.ref_date, n.draw, n.value "
+             "FROM nowcast_draws n {join} WHERE n.signal = ?", [signal], block.regions)
+    if len(got["r"]) == 0:
+        return None
+    r_idx = np.asarray(got["r"], dtype=np.int64)
+    ok = r_idx >= 0
+    draw = np.asarray(got["draw"], dtype=np.int64)
+    m = int(draw.max()) + 1
+    ref = np.asarray(got["ref_date"]).astype("datetime64[D]")
+    t_idx = np.searchsorted(dates, ref)
+    ok &= (t_idx < len(dates))
+    ok[ok] &= dates[t_idx[ok]] == ref[ok]
+    out = np.full((m, len(block.regions), len(dates)), np.nan)
+    out[draw[ok], r_idx[ok], t_idx[ok]] = _filled(got["value"])[ok]
     return out

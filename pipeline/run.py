@@ -113,6 +113,7 @@ def execute_run(
                 summaries[name]["seconds"] = round(time.perf_counter() - t, 3)
                 say(f"[{day}] {name}: {summaries[name].get('line', 'done')} "
                     f"({summaries[name]['seconds']:.1f} s)")
+            _check_outputs(con, run_id, settings)
             skipped = {k: v.get("skipped") for k, v in summaries.items() if v.get("skipped")}
             con.execute("UPDATE out.runs SET status = 'superseded' "
                         "WHERE as_of = ? AND status = 'published'", [day])
@@ -122,8 +123,8 @@ def execute_run(
                  json.dumps(skipped, default=str) if skipped else None,
                  "; ".join(f"{k}: {v.get('line', '')}" for k, v in summaries.items())],
             )
-    except (UserError, RunFailed):
-        _record_failure(con, run_id, day, started, settings, "stopped by a user error")
+    except (UserError, RunFailed) as exc:
+        _record_failure(con, run_id, day, started, settings, str(exc))
         raise
     except Exception as exc:
         msg = f"{type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''}"
@@ -139,6 +140,29 @@ def execute_run(
     result["line"] = (f"published run {run_id} (as of {day}) in {result['seconds']:.1f} s: "
                       + "; ".join(f"{k} {v.get('line', '')}" for k, v in summaries.items()))
     return result
+
+
+def _check_outputs(con: duckdb.DuckDBPyConnection, run_id: str, settings: Settings) -> None:
+    """Refuse to publish a run in which a stage produced nothing at all for a signal it was asked
+    to cover (every batch failed, or a setting made the stage skip it): a silent gap in the
+    morning's tables is worse than a failed run that says why."""
+    signals = [r[0] for r in con.execute(
+        "SELECT DISTINCT signal FROM core.cleaned WHERE run_id = ? ORDER BY 1", [run_id]
+    ).fetchall()]
+    if not signals:
+        return
+    have_nowcast = {r[0] for r in con.execute(
+        "SELECT DISTINCT signal FROM out.nowcast WHERE run_id = ?", [run_id]).fetchall()}
+    have_fc = {(r[0], r[1]) for r in con.execute(
+        "SELECT DISTINCT model, signal FROM out.forecasts WHERE run_id = ?", [run_id]).fetchall()}
+    for signal in signals:
+        if signal not in have_nowcast:
+            raise RunFailed(f"run {run_id}: the nowcast stage produced nothing for signal "
+                            f"'{signal}' (see out.runs.message); nothing published")
+        for model in settings.get("models", signal):
+            if model in ("baseline", "ensemble") and (model, signal) not in have_fc:
+                raise RunFailed(f"run {run_id}: model '{model}' produced no forecasts for signal "
+                                f"'{signal}'; nothing published")
 
 
 def _record_failure(con: duckdb.DuckDBPyConnection, run_id: str, as_of: dt.date,

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import copy
 import json
+import sys
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -16,48 +17,76 @@ from typing import Any
 
 from tallywave.pipeline.errors import UserError
 
-#: Every setting, its default and why.  The README's settings table is generated from this.
-DEFAULTS: dict[str, Any] = {
+
+@dataclass(frozen=True)
+class Setting:
+    """One setting: its default, what it means, and (for a choice) the values allowed."""
+
+    default: Any
+    help: str
+    choices: tuple[str, ...] | None = None  # for text or list-of-text settings
+
+
+#: Every setting, its default, its allowed values and why, grouped by stage.  The README's
+#: settings table is generated from this (``python -m tallywave.pipeline.settings``) and a test
+#: checks that the README matches it.  Add a setting here, in its stage's group.
+SPEC: dict[str, Setting] = {
     # ---- nowcast ----
-    "max_delay_days": 28,  # longest reporting delay modelled; later corrections are ignored
-    "nowcast_method": "glm",  # "glm" (count model, intervals) | "chain_ladder"
-    "nowcast_family": "negbin",  # "negbin" | "poisson": noise of the unreported cells
-    "nowcast_weekday_effect": False,  # report-weekday effect in the count model (slower)
-    "nowcast_training_days": 60,  # reference dates used to estimate the delay distribution
-    "nowcast_pool_below": 200.0,  # a region with fewer events in its triangle borrows strength
-    "nowcast_draws": 400,  # predictive draws for nowcast quantiles and Rt propagation
+    "max_delay_days": Setting(28, "longest reporting delay modelled by the nowcast"),
+    "nowcast_method": Setting("glm", "`glm` (log-linear count model, intervals) or "
+                              "`chain_ladder`", ("glm", "chain_ladder")),
+    "nowcast_family": Setting("negbin", "noise of the unreported cells", ("negbin", "poisson")),
+    "nowcast_weekday_effect": Setting(False, "report-weekday effect in the count model"),
+    "nowcast_training_days": Setting(60, "reference dates used to estimate the delay "
+                                     "distribution"),
+    "nowcast_pool_below": Setting(200.0, "a region with fewer events in its triangle is shrunk "
+                                  "toward the delay distribution pooled over the signal's "
+                                  "regions; `out.fits` (model `nowcast`) says which"),
+    "nowcast_draws": Setting(400, "predictive draws behind the published nowcast quantiles"),
+    "nowcast_joint_draws": Setting(100, "of those, joint draws of the nowcast window handed on "
+                                   "to R_t and the forecasts"),
     # ---- cleaning ----
-    "clean_negative_window_days": 14,  # days a negative value is taken back from
-    "clean_dump_threshold": 6.0,  # robust SDs above the local baseline that make a backlog dump
-    "clean_dump_min_excess": 10.0,  # smallest excess (counts) treated as a dump
-    "clean_dump_spread_days": 14,  # days a dump's excess is spread back over
-    "clean_baseline_days": 21,  # local baseline window for dump detection
-    "clean_weekday_weeks": 8,  # recent weeks used to estimate weekday effects
-    "use_weekday_adjusted": False,  # later stages read the weekday-adjusted series
+    "clean_negative_window_days": Setting(14, "days a negative value is taken back from"),
+    "clean_dump_threshold": Setting(6.0, "robust SDs above the local baseline that make a "
+                                    "backlog dump"),
+    "clean_dump_min_excess": Setting(10.0, "smallest excess (counts) treated as a dump"),
+    "clean_dump_spread_days": Setting(14, "days a dump's excess is spread back over"),
+    "clean_baseline_days": Setting(21, "local-level window of the artefact detector"),
+    "clean_weekday_weeks": Setting(8, "recent weeks used to estimate weekday effects"),
+    "use_weekday_adjusted": Setting(False, "R_t from the weekday-adjusted series"),
     # ---- transmission ----
-    "rt_window_days": 7,  # renewal estimator smoothing window (Cori et al. 2013)
-    "rt_prior_mean": 5.0,  # gamma prior on R (Cori et al. 2013 use mean 5, sd 5)
-    "rt_prior_sd": 5.0,
-    "rt_min_infections": 12.0,  # no estimate when the window's expected infections are fewer
-    "generation_interval": {"mean": 5.2, "sd": 2.4},  # days; discretised gamma, or {"pmf": [...]}
-    "rt_history_days": 120,  # days of history estimated and published each run
-    "rt_nowcast_days": 14,  # last days flagged as depending on the nowcast
+    "rt_window_days": Setting(7, "renewal estimator smoothing window (Cori et al. 2013)"),
+    "rt_prior_mean": Setting(5.0, "mean of the gamma prior on R (Cori et al. 2013 use 5)"),
+    "rt_prior_sd": Setting(5.0, "sd of the gamma prior on R (Cori et al. 2013 use 5)"),
+    "rt_min_infections": Setting(12.0, "no R_t where the window's expected infections are "
+                                 "fewer"),
+    "generation_interval": Setting({"mean": 5.2, "sd": 2.4},
+                                   "days; discretised gamma `{mean, sd}`, or `{pmf = [...]}`, "
+                                   "or `{candidates = [[mean, sd], ...]}` to mix"),
+    "rt_history_days": Setting(120, "days of R_t published per run"),
+    "rt_nowcast_days": Setting(14, "last days whose R_t is flagged nowcast-dependent"),
     # ---- forecasting ----
-    "fit_window_weeks": 8,  # weeks of data each compartmental refit uses
-    "horizon_days": 28,
-    "quantiles": [0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975],
-    "models": ["baseline", "renewal", "compartmental", "ensemble"],
-    "forecast_draws": 400,
-    "latent_days": 3.0,  # compartmental model: mean latent period
-    "infectious_days": 5.0,  # compartmental model: mean infectious period
-    "drift_sd": 0.05,  # random-walk sd of log transmission per day beyond the data
-    "ensemble_method": "median",  # "median" | "mean" quantile averaging
+    "fit_window_weeks": Setting(8, "weeks of data each compartmental refit uses"),
+    "horizon_days": Setting(28, "forecast horizon"),
+    "quantiles": Setting([0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975],
+                         "forecast quantile levels (median + symmetric pairs)"),
+    "models": Setting(["baseline", "renewal", "compartmental", "ensemble"], "models to run",
+                      ("baseline", "renewal", "compartmental", "ensemble")),
+    "forecast_draws": Setting(400, "Monte Carlo draws per forecast"),
+    "latent_days": Setting(3.0, "compartmental model: mean latent period (days)"),
+    "infectious_days": Setting(5.0, "compartmental model: mean infectious period (days)"),
+    "drift_sd": Setting(0.05, "random-walk sd of log transmission per day beyond the data"),
+    "ensemble_method": Setting("median", "how quantiles are combined across models",
+                               ("median", "mean")),
     # ---- scoring ----
-    "settle_days": 14,  # truth counts as settled this many days after target_date
+    "settle_days": Setting(14, "truth counts as settled this many days after the target date"),
     # ---- run ----
-    "seed": 20260302,  # random seed: runs are reproducible
-    "batch_regions": 250,  # regions per parallel task in the flows
+    "seed": Setting(20260302, "random seed: runs are reproducible"),
+    "batch_regions": Setting(250, "regions per parallel task (never changes the results)"),
 }
+
+#: The defaults alone (what :class:`Settings` starts from).
+DEFAULTS: dict[str, Any] = {k: v.default for k, v in SPEC.items()}
 
 _SIGNAL_KEYS = set(DEFAULTS)  # every key may be overridden per signal
 
@@ -109,9 +138,17 @@ def _check_value(key: str, value: Any, where: str) -> Any:
             raise UserError(f"{where}: {key} must not be negative, got {value!r}")
         return type(default)(value) if isinstance(default, int) and float(value).is_integer() \
             else value
+    choices = SPEC[key].choices
     if isinstance(default, list):
         if not isinstance(value, list):
             raise UserError(f"{where}: {key} must be a list, got {value!r}")
+        if choices is not None:
+            for item in value:
+                if item not in choices:
+                    raise UserError(f"{where}: {key} has {item!r}, which is not one of "
+                                    f"{', '.join(choices)}")
+            if len(set(value)) != len(value):
+                raise UserError(f"{where}: {key} names a value twice")
         if key == "quantiles":
             qs = sorted(float(q) for q in value)
             if any(not 0 < q < 1 for q in qs) or 0.5 not in qs:
@@ -122,6 +159,8 @@ def _check_value(key: str, value: Any, where: str) -> Any:
         return value
     if isinstance(default, str) and not isinstance(value, str):
         raise UserError(f"{where}: {key} must be text, got {value!r}")
+    if choices is not None and value not in choices:
+        raise UserError(f"{where}: {key} = {value!r} is not one of {', '.join(choices)}")
     return value
 
 
@@ -153,3 +192,30 @@ def load_settings(path: str | Path | None = None) -> Settings:
             s.per_signal.setdefault(sig, {})[key] = _check_value(key, value, f"{p}: signal.{sig}")
     s.source = str(p)
     return s
+
+
+def _cell(value: Any) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, str):
+        return f'`"{value}"`'
+    if isinstance(value, dict):
+        return "`{" + ", ".join(f"{k} = {v}" for k, v in value.items()) + "}`"
+    if isinstance(value, list):
+        if all(isinstance(v, float) for v in value) and len(value) > 4:
+            return f"{value[0]:g} … {value[-1]:g} ({len(value)} levels)"
+        return ", ".join(str(v) for v in value)
+    return f"{value:g}" if isinstance(value, float) else str(value)
+
+
+def markdown_table() -> str:
+    """The README's settings table, generated from :data:`SPEC`."""
+    rows = ["| key | default | allowed | meaning |", "|---|---|---|---|"]
+    for key, spec in SPEC.items():
+        allowed = ", ".join(f"`{c}`" for c in spec.choices) if spec.choices else ""
+        rows.append(f"| `{key}` | {_cell(spec.default)} | {allowed} | {spec.help} |")
+    return "\n".join(rows)
+
+
+if __name__ == "__main__":  # pragma: no cover - prints the README table
+    sys.stdout.write(markdown_table() + "\n")

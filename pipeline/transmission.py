@@ -15,8 +15,9 @@ from typing import Any
 import duckdb
 import numpy as np
 import pandas as pd
-from scipy import special
 
+from tallywave.models.base import SeriesRandom, series_seeds
+from tallywave.models.incidence import draws_from_quantiles, incidence_draws
 from tallywave.models.renewal import (
     CoriEstimator,
     doubling_time,
@@ -25,13 +26,11 @@ from tallywave.models.renewal import (
 )
 from tallywave.pipeline.clean import cleaned_blocks
 from tallywave.pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
+from tallywave.pipeline.nowcast import nowcast_joint_draws, nowcast_quantiles
 from tallywave.pipeline.settings import Settings
 from tallywave.pipeline.store import insert_df
 
 RT_LEVELS = [0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975]
-#: Correlation of the nowcast draws across the reference dates of one draw: part of a nowcast's
-#: error is shared by all recent days (the delay distribution), part is day-specific noise.
-NOWCAST_DAY_CORRELATION = 0.5
 RT_DRAWS = 100  # incidence draws whose posteriors are mixed
 
 
@@ -43,103 +42,24 @@ def interval_pmfs(cfg: dict[str, Any]) -> list[np.ndarray]:
     return [resolve_interval(gi)]
 
 
-def nowcast_quantiles(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
-                      block: SeriesBlock) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
-    """This run's nowcast as arrays aligned to ``block``: levels (k,), quantiles (n, D1, k),
-    reported (n, D1) and the column where the nowcast window starts in the block."""
-    con.register("_nq_regions", pd.DataFrame({"region": block.regions,
-                                              "r": np.arange(len(block.regions))}))
-    try:
-        # region positions are found by DuckDB; only numbers come back
-        got = con.execute(
-            "SELECT coalesce(g.r, -1) AS r, n.ref_date, n.q_level, n.value, n.reported "
-            "FROM out.nowcast n LEFT JOIN _nq_regions g USING (region) "
-            "WHERE n.run_id = ? AND n.signal = ?", [run_id, signal]).fetchnumpy()
-    finally:
-        con.unregister("_nq_regions")
-    if len(got["r"]) == 0:
-        return np.array([0.5]), np.zeros((len(block.regions), 0, 1)), \
-            np.zeros((len(block.regions), 0)), len(block.dates)
-    ref = np.asarray(got["ref_date"]).astype("datetime64[D]")
-    q_level = _filled(got["q_level"])
-    levels = np.unique(q_level)
-    dates = np.unique(ref)
-    k, t = len(levels), len(dates)
-    q = np.full((len(block.regions), t, k), np.nan)
-    rep = np.full((len(block.regions), t), np.nan)
-    r_idx = np.asarray(got["r"], dtype=np.int64)
-    ok = r_idx >= 0
-    t_idx = np.searchsorted(dates, ref)
-    l_idx = np.searchsorted(levels, q_level)
-    q[r_idx[ok], t_idx[ok], l_idx[ok]] = _filled(got["value"])[ok]
-    rep[r_idx[ok], t_idx[ok]] = _filled(got["reported"])[ok]
-    start = int(np.searchsorted(block.dates, dates[0]))
-    return levels, q, rep, start
+def nowcast_draws_for(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
+                     block: SeriesBlock, n_draws: int, seed: int
+                     ) -> tuple[np.ndarray, np.ndarray, int]:
+    """Joint draws (m, n, t) of the eventual counts of the nowcast window, the reported counts
+    (n, t) and the window's first column in ``block``.
 
-
-def _filled(a: np.ndarray) -> np.ndarray:
-    """A fetched numeric column as floats with NULL as NaN."""
-    return np.ma.filled(a.astype(float), np.nan) if np.ma.isMaskedArray(a) else a.astype(float)
-
-
-def _quantile_draws(levels: np.ndarray, q: np.ndarray, u: np.ndarray) -> np.ndarray:
-    """Evaluate per-cell quantile functions (linear between levels, flat tails) at u.
-
-    q: (n, t, k) increasing in k; u: (m, n, t) in (0, 1) → (m, n, t).
+    The nowcast stage's own joint draws when it ran on this connection; otherwise draws rebuilt
+    from the published quantiles with days independent, one random stream per region.
     """
-    k = len(levels)
-    idx = np.clip(np.searchsorted(levels, u) - 1, 0, k - 2)
-    lo_l, hi_l = levels[idx], levels[idx + 1]
-    w = np.clip((u - lo_l) / (hi_l - lo_l), 0.0, 1.0)
-    # one flat gather of the bracketing quantiles of every (draw, cell)
-    flat = np.ascontiguousarray(q).reshape(-1)
-    pos = (np.arange(q.shape[0] * q.shape[1]) * k).reshape(q.shape[:2])[None] + idx
-    lo, hi = flat[pos], flat[pos + 1]
-    return lo + w * (hi - lo)
-
-
-def incidence_draws(values: np.ndarray, levels: np.ndarray, q: np.ndarray, reported: np.ndarray,
-                    start: int, n_draws: int, rng: np.random.Generator) -> np.ndarray:
-    """Draws (n_draws, n, T) of the corrected incidence: cleaned values, with the nowcast window
-    scaled by the nowcast's completion factor (eventual / reported) at correlated quantiles."""
-    m = int(n_draws)
-    out = np.broadcast_to(values, (m,) + values.shape).copy()
-    t = q.shape[1]
-    if t == 0:
-        return out
-    n = values.shape[0]
-    z = (np.sqrt(NOWCAST_DAY_CORRELATION) * rng.standard_normal((m, n, 1))
-         + np.sqrt(1 - NOWCAST_DAY_CORRELATION) * rng.standard_normal((m, n, t)))
-    u = special.ndtr(z)  # the standard normal CDF (what scipy.stats.norm.cdf evaluates)
-    eventual = _quantile_draws(levels, np.nan_to_num(q), u)
-    base = values[:, start:start + t]
-    scaled = _complete(base[None], eventual, reported[None])
-    scaled = np.where(np.isnan(q[..., 0])[None], base[None], scaled)
-    out[:, :, start:start + t] = scaled
-    return out
-
-
-def _complete(base: np.ndarray, eventual: np.ndarray, reported: np.ndarray) -> np.ndarray:
-    """Apply the nowcast to a cleaned value: scale by eventual / reported where something was
-    reported, else add the expected unreported part; never negative."""
-    rep = np.nan_to_num(reported)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        out = np.where(rep > 0, base * eventual / np.where(rep > 0, rep, 1.0),
-                       base + np.maximum(eventual - rep, 0.0))
-    return np.maximum(np.nan_to_num(out), 0.0)
-
-
-def median_corrected(values: np.ndarray, levels: np.ndarray, q: np.ndarray, reported: np.ndarray,
-                     start: int) -> np.ndarray:
-    """The corrected series at the nowcast median (point estimate used by the forecasters)."""
-    out = values.copy()
-    t = q.shape[1]
-    if t == 0:
-        return out
-    med = q[..., int(np.argmin(np.abs(levels - 0.5)))]
-    base = values[:, start:start + t]
-    out[:, start:start + t] = np.where(np.isnan(med), base, _complete(base, med, reported))
-    return out
+    levels, q, rep, start = nowcast_quantiles(con, run_id, signal, block)
+    dates = block.dates[start:start + q.shape[1]]
+    joint = nowcast_joint_draws(con, signal, block, dates)
+    if joint is None:
+        rnd = SeriesRandom(series_seeds(seed, signal, block.regions), len(block.regions))
+        z = np.moveaxis(rnd.normal((n_draws, q.shape[1] + 1)), 0, 1)
+        joint = draws_from_quantiles(levels, q, z)
+        joint = np.where(np.isnan(q[..., 0])[None], np.nan, joint)
+    return joint[:n_draws], rep, start
 
 
 def rt_span(cfg: dict[str, Any]) -> int:
@@ -184,8 +104,7 @@ def _estimate_block(args: tuple) -> dict[str, Any]:
     series, and the mixture over draws is fitted only on the days from ``start`` (with the
     history their windows and intervals reach back to).  Same numbers, less work.
     """
-    values, levels, q, rep, start, cfg, seed = args
-    rng = np.random.default_rng(seed)
+    values, eventual, rep, start, cfg = args
     pmfs = interval_pmfs(cfg)
     interval = pmfs if len(pmfs) > 1 else pmfs[0]
     mean, sd = float(cfg["rt_prior_mean"]), float(cfg["rt_prior_sd"])
@@ -201,7 +120,7 @@ def _estimate_block(args: tuple) -> dict[str, Any]:
         sl = slice(0, start)
         qs[:, sl], p_grow[:, sl], r_mean[:, sl] = _posteriors(est, values[None, :, sl], interval)
     if start < n_days:  # the nowcast window: the mixture over incidence draws
-        draws = incidence_draws(values, levels, q, rep, start, RT_DRAWS, rng)
+        draws = incidence_draws(values, eventual, rep, start)
         c = max(0, start - rt_span(cfg))
         got = _posteriors(est, draws[..., c:], interval)
         sl = slice(start, n_days)
@@ -222,14 +141,15 @@ def transmission(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Setti
                             since=since)
     for signal, block in blocks.items():
         cfg = settings.for_signal(signal)
-        levels, q, rep, start = nowcast_quantiles(con, run_id, signal, block)
+        eventual, rep, start = nowcast_draws_for(con, run_id, signal, block, RT_DRAWS,
+                                                 int(cfg["seed"]))
         parts = batches(len(block.regions), int(cfg["batch_regions"]))
         keep_days = int(cfg["rt_history_days"])
         t0 = max(0, len(block.dates) - keep_days)
         dates = block.dates[t0:]
         cut = history_cut(t0, start, cfg)
-        jobs = [(block.values[s, cut:], levels, q[s], rep[s], start - cut, cfg,
-                 int(cfg["seed"]) + i) for i, s in enumerate(parts)]
+        jobs = [(block.values[s, cut:], eventual[:, s], rep[s], start - cut, cfg)
+                for s in parts]
         results = mapper(_estimate_block, jobs)
         t0 -= cut  # column of the first published day in the (shortened) results
         n_nc = int(cfg["rt_nowcast_days"])

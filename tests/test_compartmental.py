@@ -14,10 +14,10 @@ from scipy.optimize import least_squares
 from tallywave.models.compartmental import (
     CompartmentalModel,
     expected_reports,
-    gamma_delay_pmf,
     seird_rhs,
     simulate,
 )
+from tallywave.models.distributions import gamma_delay_pmf
 
 LAT, INF, IFR = 3.0, 5.0, 0.01
 CASE_DELAY, DEATH_DELAY = (6.0, 3.0), (20.0, 8.0)

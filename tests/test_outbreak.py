@@ -20,9 +20,9 @@ from tallywave.models.outbreak import (
     ReportingProcess,
     SeirdModel,
     TransmissionSchedule,
-    discretised_gamma_pmf,
     draw_populations,
     final_size,
+    gamma_delay_pmf,
     generation_interval_pmf,
     gravity_mixing,
     inject_backlog_dump,
@@ -154,9 +154,9 @@ def test_empirical_delay_distribution_matches_pmf(long_epidemic) -> None:
     assert means["deaths"] == pytest.approx(8.0, abs=0.1)
 
 
-def test_discretised_gamma_pmf_against_scipy() -> None:
+def test_gamma_delay_pmf_against_scipy() -> None:
     # P(floor X = d) = F(d+1) - F(d) for gamma X (scipy.stats.gamma as reference)
-    pmf = discretised_gamma_pmf(4.0, 2.0, 200)
+    pmf = gamma_delay_pmf(4.0, 2.0, 200)
     ref = stats.gamma(a=4.0, scale=1.0)
     np.testing.assert_allclose(pmf[:10], ref.cdf(np.arange(1, 11)) - ref.cdf(np.arange(10)),
                                rtol=1e-9)
@@ -178,7 +178,7 @@ def test_weekend_testing_shortfall_moves_to_monday() -> None:
 
 def test_artefact_injection_keeps_totals_and_makes_signatures() -> None:
     rng = np.random.default_rng(3)
-    pmf = discretised_gamma_pmf(3.5, 2.5, 20)
+    pmf = gamma_delay_pmf(3.5, 2.5, 20)
     tri = rng.multinomial(rng.poisson(100, size=(2, 80)), pmf)
     dumped, moved = inject_backlog_dump(tri, 0, 50, rng)
     assert dumped.sum() == tri.sum() and dumped[0, 50, 0] == tri[0, 50, 0] + moved
