@@ -24,7 +24,8 @@ from tallywave.models.baseline import FlatBaseline
 from tallywave.models.compartmental import CompartmentalModel
 from tallywave.models.ensemble import quantile_ensemble
 from tallywave.models.incidence import incidence_draws, median_corrected
-from tallywave.models.renewal import CoriEstimator, RenewalForecaster
+from tallywave.models.renewal import CoriEstimator
+from tallywave.models.renewal_forecast import RenewalForecaster
 from tallywave.pipeline.clean import cleaned_blocks
 from tallywave.pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
 from tallywave.pipeline.nowcast import nowcast_quantiles

@@ -8,7 +8,6 @@ from scipy import integrate, stats
 
 from tallywave.models.renewal import (
     CoriEstimator,
-    RenewalForecaster,
     discretise_gamma_interval,
     doubling_time,
     growth_rate_from_r,
@@ -17,6 +16,7 @@ from tallywave.models.renewal import (
     resolve_interval,
     total_infectiousness,
 )
+from tallywave.models.renewal_forecast import RenewalForecaster
 
 Q90 = [0.05, 0.95]
 
