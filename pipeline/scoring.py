@@ -14,10 +14,48 @@ import datetime as dt
 from typing import Any
 
 import duckdb
+import pandas as pd
 
 from tallywave.models.scores import score_sql
 from tallywave.pipeline.settings import Settings
 from tallywave.pipeline.store import transaction
+
+
+def _stage_scoring_inputs(con: duckdb.DuckDBPyConnection, as_of: dt.date,
+                          settings: Settings) -> dt.date:
+    """Temp tables ``_truth`` (settled truth known on ``as_of``) and ``_published`` (published
+    forecasts issued by then whose target has settled); returns the settle cutoff date."""
+    settle = int(settings.get("settle_days"))
+    cutoff = as_of - dt.timedelta(days=settle)
+    con.execute(
+        "CREATE OR REPLACE TEMP TABLE _truth AS "
+        "SELECT region, signal, ref_date AS target_date, arg_max(value, as_of) AS truth "
+        "FROM core.observations WHERE as_of <= ? AND ref_date <= ? "
+        "GROUP BY region, signal, ref_date", [as_of, cutoff])
+    con.execute(
+        "CREATE OR REPLACE TEMP TABLE _published AS "
+        "SELECT f.* FROM out.forecasts f JOIN out.runs r USING (run_id) "
+        "WHERE r.status = 'published' AND f.issued_on <= ? AND f.target_date <= ?",
+        [as_of, cutoff])
+    return cutoff
+
+
+def scores_as_of(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings
+                 ) -> pd.DataFrame:
+    """The scores that could have been computed on ``as_of``: published forecasts whose target
+    had settled by then, against the truth known then.  Writes nothing; no later data is read,
+    so e.g. ensemble weights for a backfilled date equal what would have been published then."""
+    _stage_scoring_inputs(con, as_of, settings)
+    try:
+        return con.execute(
+            f"""SELECT issued_on, model, region, signal, target_date, horizon_days, truth,
+                       ?::DATE AS truth_as_of, wis, dispersion, overprediction,
+                       underprediction, abs_error, covered_50, covered_90, pit, bias
+                FROM ({score_sql('_published', '_truth')}) WHERE levels_ok""",
+            [as_of]).df()
+    finally:
+        con.execute("DROP TABLE IF EXISTS _truth")
+        con.execute("DROP TABLE IF EXISTS _published")
 
 
 def score(con: duckdb.DuckDBPyConnection, as_of: dt.date | None, settings: Settings
@@ -27,19 +65,8 @@ def score(con: duckdb.DuckDBPyConnection, as_of: dt.date | None, settings: Setti
         as_of = con.execute("SELECT max(as_of) FROM core.observations").fetchall()[0][0]
         if as_of is None:
             return {"line": "nothing to score (no observations)", "rows": 0}
-    settle = int(settings.get("settle_days"))
-    cutoff = as_of - dt.timedelta(days=settle)
     with transaction(con):
-        con.execute(
-            "CREATE OR REPLACE TEMP TABLE _truth AS "
-            "SELECT region, signal, ref_date AS target_date, arg_max(value, as_of) AS truth "
-            "FROM core.observations WHERE as_of <= ? AND ref_date <= ? "
-            "GROUP BY region, signal, ref_date", [as_of, cutoff])
-        con.execute(
-            "CREATE OR REPLACE TEMP TABLE _published AS "
-            "SELECT f.* FROM out.forecasts f JOIN out.runs r USING (run_id) "
-            "WHERE r.status = 'published' AND f.issued_on <= ? AND f.target_date <= ?",
-            [as_of, cutoff])
+        cutoff = _stage_scoring_inputs(con, as_of, settings)
         con.execute("DELETE FROM out.scores")
         con.execute(
             f"""INSERT INTO out.scores
