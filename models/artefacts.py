@@ -490,109 +490,113 @@ class ReportingRepair:
         self._flag(i, t, "negative")
 
     # ---- step 2 ------------------------------------------------------------------------------
-    def _repair_gaps(
-        self, cur: np.ndarray, eff: np.ndarray, expected: np.ndarray, negative_day: np.ndarray
-    ) -> np.ndarray:
-        """Spread catch-ups over gaps / improbable zero runs; returns mask of unrepaired gaps."""
-        n, t_len = cur.shape
-        isnan = np.isnan(cur)
-        iszero = (cur == 0) & ~negative_day
+    def _gap_runs(self, cur: np.ndarray, expected: np.ndarray, isnan: np.ndarray,
+                  iszero: np.ndarray) -> list[tuple[int, int, int]]:
+        """Runs of missing or zero days worth a look: (series, first day, last day + 1) for every
+        run with a missing day or with more expected counts than ``zero_p`` allows."""
         run = (isnan | iszero).astype(np.int8)
         edges = np.diff(np.pad(run, ((0, 0), (1, 1))), axis=1)
         starts = np.argwhere(edges == 1)
         ends = np.argwhere(edges == -1)  # exclusive
-        exclude = np.zeros((n, t_len), dtype=bool)
         if starts.size == 0:
-            return exclude
-        si, sa = starts[:, 0], starts[:, 1]
-        sb = ends[:, 1]
+            return []
+        si, sa, sb = starts[:, 0], starts[:, 1], ends[:, 1]
         zc = np.pad(np.cumsum(np.where(iszero, expected, 0.0), axis=1), ((0, 0), (1, 0)))
         nc = np.pad(np.cumsum(isnan, axis=1), ((0, 0), (1, 0)))
         mu_zero = zc[si, sb] - zc[si, sa]
         has_nan = (nc[si, sb] - nc[si, sa]) > 0
-        thr = -math.log(self.zero_p)
-        cand = has_nan | (mu_zero > thr)
+        cand = has_nan | (mu_zero > -math.log(self.zero_p))
+        return [(int(i), int(a), int(b)) for i, a, b in
+                zip(si[cand], sa[cand], sb[cand], strict=True)]
+
+    def _local_level(self, cur: np.ndarray, eff: np.ndarray, expected: np.ndarray, i: int,
+                     a: int, b: int) -> tuple[float, float]:
+        """Weekday-adjusted local level and its MAD from the days around the run a..b."""
+        t_len = cur.shape[1]
         half = int(self.level_window) // 2
         dow = self._dow
-        for i, a, b_end in zip(si[cand], sa[cand], sb[cand], strict=True):
+        nb = np.r_[np.arange(max(0, a - half), a), np.arange(b + 2, min(t_len, b + 2 + half))]
+        vals = cur[i, nb] / eff[i, dow[nb]]
+        vals = vals[np.isfinite(vals)]
+        if vals.size >= 3:
+            lev = float(np.median(vals))
+            return lev, float(np.median(np.abs(vals - lev)))
+        return float(expected[i, a] / eff[i, dow[a]]), 0.0
+
+    def _is_catchup(self, cur: np.ndarray, eff: np.ndarray, i: int, c: int, lev: float,
+                    mad: float, mu: np.ndarray) -> bool:
+        """Is day ``c`` (just after a run with expected counts ``mu``) a catch-up report?"""
+        if not (c < cur.shape[1] and np.isfinite(cur[i, c]) and cur[i, c] > 0 and mu.sum() > 0):
+            return False
+        mu_c = lev * eff[i, self._dow[c]]
+        sd = max(MAD_TO_SD * mad * eff[i, self._dow[c]], math.sqrt(max(mu_c, 1.0)))
+        excess = cur[i, c] - mu_c
+        return bool(excess > self.catchup_z * sd and excess >= self.catchup_min_share * mu.sum())
+
+    def _spread_catchup(self, cur: np.ndarray, eff: np.ndarray, isnan: np.ndarray, i: int,
+                        days: np.ndarray, c: int, lev: float, mu: np.ndarray,
+                        zdays: np.ndarray) -> None:
+        """Share the catch-up on day ``c`` over the run and itself, in proportion to expected
+        counts, and log every day's share."""
+        dow = self._dow
+        total = float(cur[i, c])
+        parts = self._share(total, np.r_[mu, lev * eff[i, dow[c]]])
+        for s, p in zip(days, parts[:-1], strict=True):
+            what = "missing day" if isnan[i, s] else "zero report"
+            self._log(i, s, "gap_spread", p,
+                      f"{what} given {p:.4g} of the catch-up {total:.6g} reported on "
+                      f"{self._d(c)} (expected {lev * eff[i, dow[s]]:.4g} here)")
+        self._log(i, c, "catchup_source", parts[-1] - total,
+                  f"catch-up {total:.6g} after {days.size} missing/zero day(s) spread "
+                  f"over {days.size + 1} days in proportion to expected counts "
+                  f"(local level {lev:.4g}/day x weekday effect); {parts[-1]:.4g} kept")
+        cur[i, days] = parts[:-1]
+        cur[i, c] = parts[-1]
+        self._flag(i, c, "catch_up")
+        if zdays.any():
+            self._flag(i, days[zdays], "zero_run")
+
+    def _keep_gap(self, cur: np.ndarray, isnan: np.ndarray, exclude: np.ndarray, i: int,
+                  days: np.ndarray, zdays: np.ndarray, improbable: bool, lev: float,
+                  p_zero: float) -> None:
+        """No catch-up follows: missing days become 0 (no mass moved), improbable zero runs are
+        flagged and kept; both are left out of later baselines."""
+        for s in days[isnan[i, days]]:
+            self._log(i, s, "gap_zero", 0.0,
+                      "missing day with no catch-up on the next reported day: set to 0 "
+                      "(no mass moved)")
+            cur[i, s] = 0.0
+            exclude[i, s] = True
+        if improbable:
+            a = int(days[0])
+            self._flag(i, days[zdays], "zero_run")
+            exclude[i, days[zdays]] = True
+            self._log(i, a, "zero_run_kept", 0.0,
+                      f"{int(zdays.sum())} zero report(s) from {self._d(a)} are improbable "
+                      f"(P={p_zero:.2g} at local level {lev:.4g}/day) but the next day "
+                      "shows no catch-up; left as reported")
+
+    def _repair_gaps(
+        self, cur: np.ndarray, eff: np.ndarray, expected: np.ndarray, negative_day: np.ndarray
+    ) -> np.ndarray:
+        """Spread catch-ups over gaps / improbable zero runs; returns mask of unrepaired gaps."""
+        isnan = np.isnan(cur)
+        iszero = (cur == 0) & ~negative_day
+        exclude = np.zeros(cur.shape, dtype=bool)
+        for i, a, b_end in self._gap_runs(cur, expected, isnan, iszero):
             b = b_end - 1
             days = np.arange(a, b + 1)
-            nb = np.r_[np.arange(max(0, a - half), a), np.arange(b + 2, min(t_len, b + 2 + half))]
-            vals = cur[i, nb] / eff[i, dow[nb]]
-            vals = vals[np.isfinite(vals)]
-            if vals.size >= 3:
-                lev = float(np.median(vals))
-                mad = float(np.median(np.abs(vals - lev)))
-            else:
-                lev = float(expected[i, a] / eff[i, dow[a]])
-                mad = 0.0
-            mu = lev * eff[i, dow[days]]
+            lev, mad = self._local_level(cur, eff, expected, i, a, b)
+            mu = lev * eff[i, self._dow[days]]
             zdays = iszero[i, days]
             p_zero = math.exp(-float(mu[zdays].sum())) if zdays.any() else 1.0
             improbable = bool(zdays.any()) and p_zero < self.zero_p
             if not improbable and not isnan[i, days].any():
                 continue
-            c = b + 1
-            catchup = False
-            if c < t_len and np.isfinite(cur[i, c]) and cur[i, c] > 0 and mu.sum() > 0:
-                mu_c = lev * eff[i, dow[c]]
-                sd = max(MAD_TO_SD * mad * eff[i, dow[c]], math.sqrt(max(mu_c, 1.0)))
-                excess = cur[i, c] - mu_c
-                catchup = (
-                    excess > self.catchup_z * sd and excess >= self.catchup_min_share * mu.sum()
-                )
-            if catchup:
-                total = float(cur[i, c])
-                weights = np.r_[mu, lev * eff[i, dow[c]]]
-                parts = self._share(total, weights)
-                for s, p in zip(days, parts[:-1], strict=True):
-                    what = "missing day" if isnan[i, s] else "zero report"
-                    self._log(
-                        i,
-                        s,
-                        "gap_spread",
-                        p,
-                        f"{what} given {p:.4g} of the catch-up {total:.6g} reported on "
-                        f"{self._d(c)} (expected {lev * eff[i, dow[s]]:.4g} here)",
-                    )
-                self._log(
-                    i,
-                    c,
-                    "catchup_source",
-                    parts[-1] - total,
-                    f"catch-up {total:.6g} after {days.size} missing/zero day(s) spread "
-                    f"over {days.size + 1} days in proportion to expected counts "
-                    f"(local level {lev:.4g}/day x weekday effect); {parts[-1]:.4g} kept",
-                )
-                cur[i, days] = parts[:-1]
-                cur[i, c] = parts[-1]
-                self._flag(i, c, "catch_up")
-                if zdays.any():
-                    self._flag(i, days[zdays], "zero_run")
+            if self._is_catchup(cur, eff, i, b + 1, lev, mad, mu):
+                self._spread_catchup(cur, eff, isnan, i, days, b + 1, lev, mu, zdays)
             else:
-                for s in days[isnan[i, days]]:
-                    self._log(
-                        i,
-                        s,
-                        "gap_zero",
-                        0.0,
-                        "missing day with no catch-up on the next reported day: set to 0 "
-                        "(no mass moved)",
-                    )
-                    cur[i, s] = 0.0
-                    exclude[i, s] = True
-                if improbable:
-                    self._flag(i, days[zdays], "zero_run")
-                    exclude[i, days[zdays]] = True
-                    self._log(
-                        i,
-                        a,
-                        "zero_run_kept",
-                        0.0,
-                        f"{int(zdays.sum())} zero report(s) from {self._d(a)} are improbable "
-                        f"(P={p_zero:.2g} at local level {lev:.4g}/day) but the next day "
-                        "shows no catch-up; left as reported",
-                    )
+                self._keep_gap(cur, isnan, exclude, i, days, zdays, improbable, lev, p_zero)
         # NaN days outside candidate runs cannot exist (every NaN run is a candidate)
         return exclude
 

@@ -18,6 +18,7 @@ import pandas as pd
 
 from tallywave.models.artefacts import ReportingRepair
 from tallywave.pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
+from tallywave.pipeline.keys import clear_run
 from tallywave.pipeline.settings import Settings
 from tallywave.pipeline.store import insert_df
 from tallywave.pipeline.vintages import dense_blocks, observation_blocks
@@ -48,6 +49,7 @@ def _repair_block(args: tuple[SeriesBlock, dict[str, Any]]) -> dict[str, Any]:
 def clean(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, *,
           run_id: str, mapper: Mapper = serial_map) -> dict[str, Any]:
     """Repair every (region, signal) series known on ``as_of`` and write the audit trail."""
+    clear_run(con, "clean", run_id)  # re-running under the same run_id replaces its rows
     blocks = observation_blocks(con, as_of, end=as_of)
     n_actions, n_series = 0, 0
     lines: list[str] = []
