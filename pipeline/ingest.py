@@ -430,7 +430,8 @@ def _parse_parquet(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path,
 
     def expr(k: str, src: str) -> str:
         t = types[src].upper()
-        if k in ("ref_date", "as_of") and (t == "DATE" or t.startswith("TIMESTAMP")):
+        is_date = t == "DATE" or t.startswith("TIMESTAMP")
+        if k in ("ref_date", "as_of", "reported_on") and is_date:
             return f"strftime(CAST({_q(src)} AS DATE), {_lit(spec.date_format)}) AS {k}"
         return f"CAST({_q(src)} AS VARCHAR) AS {k}"
 
@@ -721,9 +722,15 @@ def ingest_file(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path) -> F
         return _record_failed(con, spec, path, sha, None, out)
     # Same bytes for the same as_of: nothing new.  Same bytes under a later date in the file
     # name is a new snapshot (a value may have gone back to an earlier one), so it is ingested.
+    # A line list with no as_of: a repeated increment is skipped, but a complete list (or a
+    # merge by record id) that went back to an earlier file's content is the newest state.
     seen = _first(con, "SELECT status FROM raw.feed_files WHERE sha256 = ? AND source = ? "
-                  "AND status <> 'failed' AND (? OR as_of IS NOT DISTINCT FROM ?) LIMIT 1",
-                  [sha, spec.name, as_of is None, as_of])
+                  "AND status <> 'failed' AND (? OR as_of IS NOT DISTINCT FROM ?) "
+                  "AND (NOT ? OR file_id = (SELECT max(file_id) FROM raw.feed_files "
+                  "WHERE source = ? AND status NOT IN ('failed', 'skipped'))) LIMIT 1",
+                  [sha, spec.name, as_of is None, as_of,
+                   spec.records and spec.as_of is None and spec.list_mode != "increments",
+                   spec.name])
     if seen:
         out.status = "skipped"
         out.message = f"{path}: already ingested (same content, earlier status {seen[0]})"
@@ -807,8 +814,11 @@ def ingest_file(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path) -> F
 
 def _file_as_of(con: duckdb.DuckDBPyConnection, spec: FeedSpec) -> dt.date | None:
     """A file's as_of when its name gives none: the latest as_of column value of its accepted
-    rows (for a line list, its export date when the spec maps one, else its latest report)."""
-    if spec.records and spec.as_of is not None:
+    rows; None for a line list whose spec gives no as_of (its records carry their own dates,
+    and its files are ordered by arrival)."""
+    if spec.records and spec.as_of is None:
+        return None
+    if spec.records:
         fmt = _lit(spec.date_format)
         row = _first(con, f"SELECT max(try_strptime(trim(s.as_of), {fmt})::DATE) FROM _stage s "
                      "JOIN _checked c USING (line_no) WHERE c.reason IS NULL")

@@ -51,11 +51,12 @@ _DIFFERENCED = """daily AS (
 
 #: Line lists: the records that count (every file merged by record id, the latest version of a
 #: record winning; or the newest complete list of a source; or every increment), then the value
-#: of (region, signal, ref_date) on D = number of those records reported on or before D.
+#: of (region, signal, ref_date) on D = number of those records reported on or before D.  Files
+#: are ordered by their as_of, then by arrival (file_id); files without an as_of by arrival.
 _RECORDS = """rec_files AS (
     SELECT file_id, source, list_files,
-           row_number() OVER (PARTITION BY source ORDER BY as_of DESC, file_id DESC) AS newest,
-           as_of AS file_as_of
+           row_number() OVER (PARTITION BY source ORDER BY as_of DESC NULLS LAST,
+                              file_id DESC) AS newest
     FROM raw.feed_files
     WHERE status IN ('accepted', 'partial') AND list_files IS NOT NULL
 ),
@@ -66,7 +67,7 @@ recs AS (
       AND (f.list_files <> 'complete' OR f.newest = 1)
     QUALIFY f.list_files <> 'by_record_id'
          OR row_number() OVER (PARTITION BY r.source, r.record_id
-                               ORDER BY f.file_as_of DESC, r.file_id DESC, r.line_no DESC) = 1
+                               ORDER BY f.newest, r.line_no DESC) = 1
 ),
 rec_daily AS (
     SELECT region, signal, ref_date, as_of, file_id,
