@@ -64,6 +64,14 @@ Outcome column: status in raw.feed_files, then "line → reason words" of the qu
 | spec_invalid_toml         | broken TOML                       | UserError "not valid TOML"       |
 | spec_bad_date_format      | ``date_format = "%Q"``            | UserError "date_format '%Q'"     |
 
+Line lists, weekly feeds, region hierarchies and their spec keys (``NEW_KEY_CASES``): every new
+key refused with one line naming the file, source and key when unknown, of the wrong type or out
+of its set (``spec_*``); records quarantined for a reported_on before ref_date or after the
+file's as_of, missing / unparseable dates, a missing record_id, the same record_id twice in one
+file (duplicate or conflicting versions) (``records_*``); weekly rows on the wrong weekday or for
+an unfinished week, ISO week labels, Sunday-start weeks, a signal already known as daily
+(``weekly_*``); a cycle in the region tree or a region that is its own parent.
+
 Exit codes through the CLI: 0 for accepted / partial / empty, 2 for a failed file or a spec error.
 """
 
