@@ -31,14 +31,11 @@ from __future__ import annotations
 
 import datetime as dt
 import errno
-import functools
-import glob
 import hashlib
 import mmap
 import os
 import re
 import stat
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -48,50 +45,19 @@ import pandas as pd
 import pyarrow as pa
 
 from tallywave.pipeline.errors import UserError
+from tallywave.pipeline.feedspec import FORMATS, ISO_WEEK, VALUE_KINDS, FeedSpec, load_spec
+from tallywave.pipeline.hierarchy import load_regions
 from tallywave.pipeline.store import transaction
 
-FORMATS = ("csv", "jsonl", "parquet")
-VALUE_KINDS = ("cumulative", "daily")
-_SPEC_KEYS = {
-    "path", "format", "signal", "signal_column", "value_kind", "as_of", "columns",
-    "date_format", "delimiter",
-}
-_COLUMN_KEYS = {"region", "ref_date", "value"}
+__all__ = ["FORMATS", "VALUE_KINDS", "FeedSpec", "FileOutcome", "IngestSummary", "ingest_file",
+           "ingest_spec", "load_spec"]
+
 MAX_VALUE = 1e9  # a daily or cumulative count above this is refused as implausible
 MIN_DATE = dt.date(1900, 1, 1)
 MAX_LINE_BYTES = 32 * 1024 * 1024  # a longer physical line fails the file (bounded memory)
 MAX_TEXT_CHARS = 1000  # a longer region / signal name is quarantined as implausible
 MAX_CONTENT_CHARS = 65536  # quarantined content is kept verbatim up to this many characters
 _CHUNK = 1 << 23  # bytes per block when scanning a file for line ends
-
-
-@dataclass
-class FeedSpec:
-    """One ``[source.NAME]`` table of a feed spec, validated."""
-
-    name: str
-    path: str
-    format: str
-    value_kind: str
-    columns: dict[str, str]
-    as_of: dict[str, str]
-    spec_file: Path
-    signal: str | None = None
-    signal_column: str | None = None
-    date_format: str = "%Y-%m-%d"
-    delimiter: str | None = None
-
-    def files(self) -> list[Path]:
-        """Files matched by the glob (relative to the spec file), sorted by name.
-
-        A file reached through several paths (symbolic links, a folder linking to itself) is
-        listed once, under its shortest path.
-        """
-        pattern = self.path if os.path.isabs(self.path) else str(self.spec_file.parent / self.path)
-        first: dict[str, str] = {}
-        for p in sorted(glob.glob(pattern, recursive=True), key=lambda q: (q.count(os.sep), q)):
-            first.setdefault(os.path.realpath(p), p)
-        return [Path(p) for p in sorted(first.values())]
 
 
 @dataclass
@@ -131,81 +97,6 @@ class IngestSummary:
                                                    "skipped") if self.count(s)]
         return (f"{len(self.files)} files ({', '.join(parts) or 'none'}); "
                 f"{self.rows_accepted} rows accepted, {self.rows_rejected} rejected")
-
-
-def load_spec(path: str | Path) -> list[FeedSpec]:
-    """Read and validate a feed spec file; every problem names the file and the key."""
-    p = Path(path)
-    if not p.exists():
-        raise UserError(f"{p}: feed spec not found")
-    if not p.is_file():
-        raise UserError(f"{p}: feed spec is not a file")
-    try:
-        data = tomllib.loads(p.read_text(encoding="utf-8"))
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise UserError(f"{p}: not valid TOML ({exc})") from exc
-    extra = set(data) - {"source", "regions"}
-    if extra:
-        raise UserError(f"{p}: unknown table [{min(extra)}] (only [source.NAME] and [regions])")
-    sources = data.get("source")
-    if not sources or not isinstance(sources, dict):
-        raise UserError(f"{p}: no [source.NAME] tables")
-    specs = []
-    for name, t in sources.items():
-        where = f"{p}: [source.{name}]"
-        if not isinstance(t, dict):
-            raise UserError(f"{where} must be a table")
-        unknown = set(t) - _SPEC_KEYS
-        if unknown:
-            raise UserError(f"{where}: unknown key '{min(unknown)}'")
-        for key in ("path", "format", "value_kind", "as_of", "columns"):
-            if key not in t:
-                raise UserError(f"{where}: missing key '{key}'")
-        if t["format"] not in FORMATS:
-            raise UserError(f"{where}: format must be one of {', '.join(FORMATS)}")
-        if t["value_kind"] not in VALUE_KINDS:
-            raise UserError(f"{where}: value_kind must be cumulative or daily")
-        if ("signal" in t) == ("signal_column" in t):
-            raise UserError(f"{where}: give exactly one of 'signal' or 'signal_column'")
-        cols = t["columns"]
-        if not isinstance(cols, dict) or set(cols) != _COLUMN_KEYS:
-            raise UserError(f"{where}: columns must map exactly region, ref_date, value")
-        asof = t["as_of"]
-        if not isinstance(asof, dict) or asof.get("from") not in ("filename", "column"):
-            raise UserError(f"{where}: as_of must be {{from = \"filename\"|\"column\", ...}}")
-        if asof["from"] == "filename" and "pattern" not in asof:
-            raise UserError(f"{where}: as_of from filename needs a pattern, e.g. \"%Y-%m-%d\"")
-        if asof["from"] == "column" and "column" not in asof:
-            raise UserError(f"{where}: as_of from column needs column = \"...\"")
-        date_format = t.get("date_format", "%Y-%m-%d")
-        if not isinstance(date_format, str) or not _valid_date_format(date_format):
-            raise UserError(f"{where}: date_format '{date_format}' is not a strptime pattern "
-                            "such as \"%Y-%m-%d\"")
-        delimiter = t.get("delimiter")
-        if delimiter is not None and (not isinstance(delimiter, str) or len(delimiter) != 1):
-            raise UserError(f"{where}: delimiter must be one character")
-        specs.append(FeedSpec(
-            name=name, path=str(t["path"]), format=t["format"], value_kind=t["value_kind"],
-            columns={k: str(v) for k, v in cols.items()}, as_of=dict(asof), spec_file=p,
-            signal=t.get("signal"), signal_column=t.get("signal_column"),
-            date_format=date_format, delimiter=delimiter,
-        ))
-    return specs
-
-
-@functools.lru_cache(maxsize=64)
-def _valid_date_format(fmt: str) -> bool:
-    """True when DuckDB understands the strptime pattern (checked once, at spec load)."""
-    if fmt == "%Y-%m-%d":
-        return True
-    con = duckdb.connect()
-    try:
-        con.execute("SELECT try_strptime('2026-01-02', ?)", [fmt]).fetchall()
-        return "%" in fmt
-    except duckdb.Error:
-        return False
-    finally:
-        con.close()
 
 
 def _pattern_regex(pattern: str) -> re.Pattern[str]:
@@ -408,10 +299,7 @@ def _parse_csv(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path,
                         f"(found: {', '.join(names) or 'none'})")
     rejects = _csv_parser_rejects(con)
     sel = ", ".join(f"{_q(src)} AS {k}" for k, src in cols.items())
-    content = " || ',' || ".join(f"coalesce({_q(c)}, '')" for c in names)
-    con.execute(f"CREATE OR REPLACE TEMP TABLE _stage AS SELECT _rec, {sel}, "
-                f"{content} AS content FROM _parsed")
-    n = con.execute("SELECT count(*) FROM _stage").fetchall()[0][0]
+    n = con.execute("SELECT count(*) FROM _parsed").fetchall()[0][0]
     nl_inside = con.execute(
         f"SELECT count(*) FROM _parsed WHERE strpos(concat({', '.join(map(_q, names))}), "
         "chr(10)) > 0").fetchall()[0][0] > 0
@@ -438,9 +326,14 @@ def _parse_csv(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path,
             lines = lines[~np.isin(lines, list(rej))]
         linemap = pd.DataFrame({"_rec": np.arange(1, n + 1), "line_no": lines[:n]})
         rejects["content"] = rejects["content"].astype(str).str.lstrip("\r\n").map(_clip)
+    # With the record spans known, quarantined rows are later copied from the file's bytes, so
+    # the rebuilt text of every row is only needed in the fallback.
+    content = ("NULL::VARCHAR" if spans is not None else
+               " || ',' || ".join(f"coalesce({_q(c)}, '')" for c in names))
     con.register("_linemap", linemap)
-    con.execute("CREATE OR REPLACE TEMP TABLE _stage AS SELECT m.line_no, s.* EXCLUDE (_rec), "
-                "NULL::VARCHAR AS type_error FROM _stage s JOIN _linemap m USING (_rec)")
+    con.execute(f"CREATE OR REPLACE TEMP TABLE _stage AS SELECT m.line_no, {sel}, "
+                f"{content} AS content, NULL::VARCHAR AS type_error "
+                "FROM _parsed p JOIN _linemap m USING (_rec)")
     con.unregister("_linemap")
     return _Parsed(rejects=rejects, spans=spans)
 
@@ -539,7 +432,8 @@ def _parse_parquet(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path,
 
     def expr(k: str, src: str) -> str:
         t = types[src].upper()
-        if k in ("ref_date", "as_of") and (t == "DATE" or t.startswith("TIMESTAMP")):
+        is_date = t == "DATE" or t.startswith("TIMESTAMP")
+        if k in ("ref_date", "as_of", "reported_on") and is_date:
             return f"strftime(CAST({_q(src)} AS DATE), {_lit(spec.date_format)}) AS {k}"
         return f"CAST({_q(src)} AS VARCHAR) AS {k}"
 
@@ -562,7 +456,7 @@ def _parse(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path) -> _Parse
     cols = dict(spec.columns)
     if spec.signal_column:
         cols["signal"] = spec.signal_column
-    if spec.as_of["from"] == "column":
+    if spec.as_of is not None and spec.as_of["from"] == "column":
         cols["as_of"] = spec.as_of["column"]
     if spec.format == "csv":
         return _parse_csv(con, spec, path, cols)
@@ -583,18 +477,21 @@ def _json_key(name: str) -> str:
 
 _VALIDATE = """
 CREATE OR REPLACE TEMP TABLE _checked AS
-WITH typed AS (
+WITH parsed AS (
     SELECT line_no, content, type_error,
            nullif(trim(region), '') AS region,
            {signal_expr} AS signal,
            ref_date AS ref_raw,
-           try_strptime(trim(ref_date), {fmt})::DATE AS ref_date,
+           {ref_expr} AS ref_label,
            {as_of_expr} AS as_of,
            value AS value_raw,
            TRY_CAST(trim(value) AS DOUBLE) AS value
     FROM _stage
+), typed AS (
+    SELECT *, ref_label + {shift} AS ref_date FROM parsed
 )
-SELECT *,
+SELECT line_no, content, type_error, region, signal, ref_date, as_of, value,
+  NULL::VARCHAR AS record_id,
   CASE
     WHEN type_error IS NOT NULL THEN type_error
     WHEN region = {region_name} AND trim(ref_raw) = {ref_name} AND trim(value_raw) = {value_name}
@@ -606,11 +503,12 @@ SELECT *,
     WHEN length(signal) > {max_text}
          THEN 'signal is ' || length(signal) || ' characters long (limit {max_text})'
     WHEN ref_raw IS NULL OR trim(ref_raw) = '' THEN 'missing ref_date'
-    WHEN ref_date IS NULL
+    WHEN ref_label IS NULL
          THEN 'unparseable ref_date ''' || left(ref_raw, 40) || ''' (expected {fmt_txt})'
-    WHEN ref_date < DATE '1900-01-01' THEN 'ref_date ' || ref_date || ' is before 1900'
+    WHEN ref_label < DATE '1900-01-01' THEN 'ref_date ' || ref_label || ' is before 1900'
+    {weekday_check}
     WHEN as_of IS NULL THEN 'missing or unparseable as_of'
-    WHEN ref_date > as_of THEN 'ref_date ' || ref_date || ' is after as_of ' || as_of
+    WHEN ref_date > as_of THEN {after_as_of}
     WHEN value_raw IS NULL OR trim(value_raw) = '' THEN 'missing value'
     WHEN value IS NULL THEN 'non-numeric value ''' || left(value_raw, 40) || ''''
     WHEN isnan(value) OR isinf(value)
@@ -621,46 +519,153 @@ SELECT *,
 FROM typed
 """
 
+#: Line lists: one row per event.  ``as_of`` of a record is its ``reported_on`` date; the file's
+#: own as_of (when the spec gives one) only bounds it.
+_VALIDATE_RECORDS = """
+CREATE OR REPLACE TEMP TABLE _checked AS
+WITH typed AS (
+    SELECT line_no, content, type_error,
+           nullif(trim(region), '') AS region,
+           {signal_expr} AS signal,
+           ref_date AS ref_raw,
+           try_strptime(trim(ref_date), {fmt})::DATE AS ref_date,
+           reported_on AS rep_raw,
+           try_strptime(trim(reported_on), {fmt})::DATE AS reported_on,
+           {as_of_expr} AS file_as_of,
+           {record_expr} AS record_id
+    FROM _stage
+)
+SELECT line_no, content, type_error, region, signal, ref_date, reported_on AS as_of,
+  1.0::DOUBLE AS value, record_id,
+  CASE
+    WHEN type_error IS NOT NULL THEN type_error
+    WHEN region = {region_name} AND trim(ref_raw) = {ref_name} AND trim(rep_raw) = {rep_name}
+         THEN 'repeated header line'
+    WHEN region IS NULL THEN 'missing region'
+    WHEN length(region) > {max_text}
+         THEN 'region is ' || length(region) || ' characters long (limit {max_text})'
+    WHEN signal IS NULL THEN 'missing signal'
+    WHEN length(signal) > {max_text}
+         THEN 'signal is ' || length(signal) || ' characters long (limit {max_text})'
+    {record_check}
+    WHEN ref_raw IS NULL OR trim(ref_raw) = '' THEN 'missing ref_date'
+    WHEN ref_date IS NULL
+         THEN 'unparseable ref_date ''' || left(ref_raw, 40) || ''' (expected {fmt_txt})'
+    WHEN ref_date < DATE '1900-01-01' THEN 'ref_date ' || ref_date || ' is before 1900'
+    WHEN rep_raw IS NULL OR trim(rep_raw) = '' THEN 'missing reported_on'
+    WHEN reported_on IS NULL
+         THEN 'unparseable reported_on ''' || left(rep_raw, 40) || ''' (expected {fmt_txt})'
+    WHEN reported_on < ref_date
+         THEN 'reported_on ' || reported_on || ' is before ref_date ' || ref_date
+    {as_of_check}
+  END AS reason
+FROM typed
+"""
+
 _DUPLICATES = """
 CREATE OR REPLACE TEMP TABLE _checked AS
 WITH k AS (
     SELECT *,
       count(*) FILTER (WHERE reason IS NULL)
-          OVER (PARTITION BY region, signal, ref_date, as_of) AS n_key,
-      count(DISTINCT value) FILTER (WHERE reason IS NULL)
-          OVER (PARTITION BY region, signal, ref_date, as_of) AS n_val,
-      row_number() OVER (PARTITION BY region, signal, ref_date, as_of, reason IS NULL
+          OVER (PARTITION BY {key}) AS n_key,
+      count(DISTINCT {val}) FILTER (WHERE reason IS NULL)
+          OVER (PARTITION BY {key}) AS n_val,
+      row_number() OVER (PARTITION BY {key}, reason IS NULL
                          ORDER BY line_no) AS rn
     FROM _checked
 )
-SELECT line_no, content, region, signal, ref_date, as_of, value,
+SELECT line_no, content, region, signal, ref_date, as_of, value, record_id,
   CASE
     WHEN reason IS NOT NULL THEN reason
-    WHEN n_key > 1 AND n_val > 1 THEN 'conflicting values for the same region, signal and '
-         || 'ref_date ' || ref_date || ' in one file'
+    WHEN n_key > 1 AND n_val > 1 THEN {conflict}
     WHEN n_key > 1 AND rn > 1 THEN 'duplicate of an earlier row (same key and value)'
   END AS reason
 FROM k
 """
 
+_WEEKDAYS = ("Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday")
+
+
+def _week_sql(spec: FeedSpec) -> tuple[str, str, str]:
+    """(ref_date parse expression, days added to reach the week's last day, weekday check)."""
+    fmt = _lit(spec.date_format)
+    if spec.date_format == ISO_WEEK:  # 2026-W03 -> the Sunday ending ISO week 3 of 2026
+        return "try_strptime(trim(ref_date) || '-7', '%G-W%V-%u')::DATE", "0", ""
+    parse = f"try_strptime(trim(ref_date), {fmt})::DATE"
+    if spec.frequency != "weekly":
+        return parse, "0", ""
+    first = 1 if spec.week_start == "monday" else 7  # ISO day of week of the week's first day
+    last_day = spec.week_date == "last_day"
+    dow = (first + 5) % 7 + 1 if last_day else first
+    which = "last day" if last_day else "first day"
+    check = (f"WHEN isodow(ref_label) <> {dow} THEN 'ref_date ' || ref_label || ' is a ' || "
+             f"dayname(ref_label) || '; weekly rows are dated on the week''s {which} "
+             f"({_WEEKDAYS[dow - 1]}: weeks start on {spec.week_start.capitalize()})'")
+    return parse, ("0" if last_day else "6"), check
+
 
 def _validate(con: duckdb.DuckDBPyConnection, spec: FeedSpec, as_of: dt.date | None) -> None:
+    """Type and check every staged row (``_stage`` → ``_checked`` with a reason per bad row)."""
     fmt = _lit(spec.date_format)
     signal_expr = ("nullif(trim(signal), '')" if spec.signal_column else _lit(spec.signal or ""))
     if as_of is not None:
         as_of_expr = f"DATE {_lit(as_of.isoformat())}"
-    else:
+    elif spec.as_of is not None:
         as_of_expr = f"try_strptime(trim(as_of), {fmt})::DATE"
-    con.execute(_VALIDATE.format(
-        signal_expr=signal_expr, fmt=fmt, fmt_txt=spec.date_format.replace("'", "''"),
-        as_of_expr=as_of_expr, kind=spec.value_kind, max_value=MAX_VALUE,
-        max_text=MAX_TEXT_CHARS, region_name=_lit(spec.columns["region"]),
-        ref_name=_lit(spec.columns["ref_date"]), value_name=_lit(spec.columns["value"]),
-    ))
-    con.execute(_DUPLICATES)
+    else:
+        as_of_expr = "NULL::DATE"
+    common: dict[str, str | int] = {
+        "signal_expr": signal_expr, "fmt": fmt, "as_of_expr": as_of_expr,
+        "fmt_txt": spec.date_format.replace("'", "''"), "max_text": MAX_TEXT_CHARS,
+        "region_name": _lit(spec.columns["region"]), "ref_name": _lit(spec.columns["ref_date"])}
+    if spec.records:
+        _validate_records(con, spec, common)
+    else:
+        ref_expr, shift, weekday_check = _week_sql(spec)
+        after = ("'ref_date ' || ref_date || ' is after as_of ' || as_of" if spec.frequency ==
+                 "daily" else "'the week ending ' || ref_date || ' is not over on as_of ' || as_of")
+        con.execute(_VALIDATE.format(
+            **common, ref_expr=ref_expr, shift=shift, weekday_check=weekday_check,
+            after_as_of=after, kind=spec.value_kind, max_value=MAX_VALUE,
+            value_name=_lit(spec.columns["value"])))
+        _duplicates(con, key="region, signal, ref_date, as_of", val="value",
+                    conflict="'conflicting values for the same region, signal and ref_date ' "
+                             "|| ref_date || ' in one file'")
     # Reasons quote the offending text; keep each on one line.
     con.execute("UPDATE _checked SET reason = regexp_replace(reason, '\\s+', ' ', 'g') "
                 "WHERE regexp_matches(reason, '[\\r\\n\\t]')")
+
+
+def _duplicates(con: duckdb.DuckDBPyConnection, key: str, val: str, conflict: str) -> None:
+    """Refuse repeated keys among the valid rows (the window pass runs only when a key repeats:
+    one distinct count decides, which keeps millions of unique records fast)."""
+    n, n_keys = con.execute(f"SELECT count(*), count(DISTINCT ({key})) FROM _checked "
+                            "WHERE reason IS NULL").fetchall()[0]
+    if n != n_keys:
+        con.execute(_DUPLICATES.format(key=key, val=val, conflict=conflict))
+
+
+def _validate_records(con: duckdb.DuckDBPyConnection, spec: FeedSpec,
+                      common: dict[str, str | int]) -> None:
+    """Line-list checks; with a record_id, the same record twice in one file is a duplicate
+    (identical) or a conflict (different versions)."""
+    has_id = "record_id" in spec.columns
+    record_check = (
+        "WHEN record_id IS NULL THEN 'missing record_id' "
+        f"WHEN length(record_id) > {MAX_TEXT_CHARS} THEN 'record_id is ' || "
+        f"length(record_id) || ' characters long (limit {MAX_TEXT_CHARS})'") if has_id else ""
+    as_of_check = "" if spec.as_of is None else (
+        "WHEN file_as_of IS NULL THEN 'missing or unparseable as_of' "
+        "WHEN reported_on > file_as_of THEN 'reported_on ' || reported_on || "
+        "' is after the file''s as_of ' || file_as_of")
+    con.execute(_VALIDATE_RECORDS.format(
+        **common, rep_name=_lit(spec.columns["reported_on"]), record_check=record_check,
+        record_expr="nullif(trim(record_id), '')" if has_id else "NULL::VARCHAR",
+        as_of_check=as_of_check))
+    if has_id:
+        _duplicates(con, key="record_id", val="(region, signal, ref_date, as_of)",
+                    conflict="'conflicting versions of record ' || left(record_id, 40) || "
+                             "' in one file'")
 
 
 def _check_regular_file(path: Path) -> None:
@@ -695,9 +700,11 @@ def _record(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path, sha: str
             as_of: dt.date | None, out: FileOutcome) -> int:
     fid = con.execute("SELECT nextval('raw.file_id_seq')").fetchall()[0][0]
     con.execute(
-        "INSERT INTO raw.feed_files VALUES (?, ?, ?, ?, ?, now(), ?, ?, ?, ?, ?)",
+        "INSERT INTO raw.feed_files (file_id, source, path, sha256, as_of, received_at, "
+        "rows_read, rows_accepted, rows_rejected, status, message, list_files) "
+        "VALUES (?, ?, ?, ?, ?, now(), ?, ?, ?, ?, ?, ?)",
         [fid, spec.name, str(path), sha, as_of, out.rows_read, out.rows_accepted,
-         out.rows_rejected, out.status, out.message],
+         out.rows_rejected, out.status, out.message, spec.list_mode],
     )
     out.file_id = int(fid)
     return int(fid)
@@ -717,16 +724,22 @@ def ingest_file(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path) -> F
         return _record_failed(con, spec, path, "", None, out)
     as_of = None
     try:
-        if spec.as_of["from"] == "filename":
+        if spec.as_of is not None and spec.as_of["from"] == "filename":
             as_of = as_of_from_filename(path, spec.as_of["pattern"])
     except UserError as exc:
         out.message = str(exc)
         return _record_failed(con, spec, path, sha, None, out)
     # Same bytes for the same as_of: nothing new.  Same bytes under a later date in the file
     # name is a new snapshot (a value may have gone back to an earlier one), so it is ingested.
+    # A line list with no as_of: a repeated increment is skipped, but a complete list (or a
+    # merge by record id) that went back to an earlier file's content is the newest state.
     seen = _first(con, "SELECT status FROM raw.feed_files WHERE sha256 = ? AND source = ? "
-                  "AND status <> 'failed' AND (? OR as_of IS NOT DISTINCT FROM ?) LIMIT 1",
-                  [sha, spec.name, as_of is None, as_of])
+                  "AND status <> 'failed' AND (? OR as_of IS NOT DISTINCT FROM ?) "
+                  "AND (NOT ? OR file_id = (SELECT max(file_id) FROM raw.feed_files "
+                  "WHERE source = ? AND status NOT IN ('failed', 'skipped'))) LIMIT 1",
+                  [sha, spec.name, as_of is None, as_of,
+                   spec.records and spec.as_of is None and spec.list_mode != "increments",
+                   spec.name])
     if seen:
         out.status = "skipped"
         out.message = f"{path}: already ingested (same content, earlier status {seen[0]})"
@@ -772,13 +785,22 @@ def ingest_file(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path) -> F
                                 f"(first: line {first[0]}: {first[1]})")
     else:
         out.status = "accepted"
+    if out.rows_accepted:
+        clash = _signal_clash(con, spec, path)
+        if clash:  # a signal cannot change its time resolution: the whole file is refused
+            out.rows_read = out.rows_accepted = out.rows_rejected = 0
+            out.message = clash
+            return _record_failed(con, spec, path, sha, as_of, out)
     if as_of is None:
-        as_of = con.execute("SELECT max(as_of) FROM _checked WHERE reason IS NULL").fetchall()[0][0]
+        as_of = _file_as_of(con, spec)
     with transaction(con):
         fid = _record(con, spec, path, sha, as_of, out)
         con.execute(
-            "INSERT INTO raw.reports SELECT ?, ?, region, signal, ref_date, as_of, value, ?, "
-            "line_no FROM _checked WHERE reason IS NULL", [fid, spec.name, spec.value_kind])
+            "INSERT INTO raw.reports (file_id, source, region, signal, ref_date, as_of, value, "
+            "value_kind, line_no, record_id) SELECT ?, ?, region, signal, ref_date, as_of, "
+            "value, ?, line_no, record_id FROM _checked WHERE reason IS NULL",
+            [fid, spec.name, spec.value_kind])
+        _register_signals(con, spec, path, fid)
         raw = _rejected_content(con, path, parsed)
         con.register("_raw_content", raw)
         con.execute(
@@ -799,6 +821,49 @@ def ingest_file(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path) -> F
     return out
 
 
+def _file_as_of(con: duckdb.DuckDBPyConnection, spec: FeedSpec) -> dt.date | None:
+    """A file's as_of when its name gives none: the latest as_of column value of its accepted
+    rows; None for a line list whose spec gives no as_of (its records carry their own dates,
+    and its files are ordered by arrival)."""
+    if spec.records and spec.as_of is None:
+        return None
+    if spec.records:
+        fmt = _lit(spec.date_format)
+        row = _first(con, f"SELECT max(try_strptime(trim(s.as_of), {fmt})::DATE) FROM _stage s "
+                     "JOIN _checked c USING (line_no) WHERE c.reason IS NULL")
+    else:
+        row = _first(con, "SELECT max(as_of) FROM _checked WHERE reason IS NULL")
+    return row[0] if row else None
+
+
+def _signal_clash(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path) -> str | None:
+    """A one-line message when a signal of this file is known at another time resolution."""
+    row = _first(con, "SELECT c.signal, s.frequency, s.week_start, s.source, s.path "
+                 "FROM (SELECT DISTINCT signal FROM _checked WHERE reason IS NULL) c "
+                 "JOIN core.signals s USING (signal) WHERE s.frequency <> ? "
+                 "OR s.week_start IS DISTINCT FROM ? ORDER BY 1 LIMIT 1",
+                 [spec.frequency, _week_start(spec)])
+    if row is None:
+        return None
+    signal, freq, start, source, first = row
+    have = freq + (f" ({start}-start weeks)" if start else "")
+    want = spec.frequency + (f" ({spec.week_start}-start weeks)" if _week_start(spec) else "")
+    return _one_line(f"{path}: signal '{signal}' is {have} (source {source}, file {first}) but "
+                     f"[source.{spec.name}] declares it {want}; file not ingested")
+
+
+def _week_start(spec: FeedSpec) -> str | None:
+    return spec.week_start if spec.frequency == "weekly" else None
+
+
+def _register_signals(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path,
+                      fid: int) -> None:
+    """Record the time resolution of signals seen for the first time (``core.signals``)."""
+    con.execute("INSERT INTO core.signals SELECT DISTINCT signal, ?, ?, ?, ?, ? FROM _checked "
+                "WHERE reason IS NULL AND signal NOT IN (SELECT signal FROM core.signals)",
+                [spec.frequency, _week_start(spec), spec.name, fid, str(path)])
+
+
 def _record_failed(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path, sha: str,
                    as_of: dt.date | None, out: FileOutcome) -> FileOutcome:
     out.status = "failed"
@@ -815,46 +880,9 @@ def _record_failed(con: duckdb.DuckDBPyConnection, spec: FeedSpec, path: Path, s
 
 
 def ingest_regions(con: duckdb.DuckDBPyConnection, spec_path: str | Path) -> str | None:
-    """Load the optional ``[regions]`` table of a feed spec (region sizes) into core.regions.
-
-    ``[regions] path = "regions.csv", columns = { region = "...", population = "..." }``.
-    Rows with a missing region or a population that is not a positive number are skipped and
-    counted in the returned message; the rest replace earlier values of the same region.
-    """
-    p = Path(spec_path)
-    t = tomllib.loads(p.read_text(encoding="utf-8")).get("regions")
-    if t is None:
-        return None
-    where = f"{p}: [regions]"
-    if not isinstance(t, dict) or set(t) - {"path", "columns"} or "path" not in t:
-        raise UserError(f"{where} needs exactly path = ... and columns = {{region, population}}")
-    cols = t.get("columns", {"region": "region", "population": "population"})
-    if not isinstance(cols, dict) or set(cols) != {"region", "population"}:
-        raise UserError(f"{where}: columns must map region and population")
-    path = Path(t["path"]) if os.path.isabs(t["path"]) else p.parent / t["path"]
-    if not path.is_file():
-        raise UserError(f"{where}: {path} not found")
-    try:
-        names = [r[0] for r in con.execute(
-            f"DESCRIBE SELECT * FROM read_csv({_lit(str(path))}, all_varchar = true)").fetchall()]
-        missing = [c for c in cols.values() if c not in names]
-        if missing:
-            raise UserError(f"{path}: missing column(s) {', '.join(missing)}")
-        df = con.execute(
-            f"SELECT nullif(trim({_q(cols['region'])}), '') AS region, "
-            f"TRY_CAST({_q(cols['population'])} AS DOUBLE) AS population "
-            f"FROM read_csv({_lit(str(path))}, all_varchar = true)").df()
-    except duckdb.Error as exc:
-        raise UserError(f"{path}: cannot parse ({str(exc).splitlines()[0][:160]})") from exc
-    good = df["region"].notna() & (df["population"] > 0) & np.isfinite(df["population"])
-    df = df[good].drop_duplicates("region", keep="last")
-    with transaction(con):
-        con.register("_regions", df)
-        con.execute("DELETE FROM core.regions WHERE region IN (SELECT region FROM _regions)")
-        con.execute("INSERT INTO core.regions SELECT region, population, NULL FROM _regions")
-        con.unregister("_regions")
-    bad = int((~good).sum())
-    return f"{path}: {len(df)} region sizes" + (f", {bad} rows skipped" if bad else "")
+    """Load the optional ``[regions]`` table (sizes, hierarchy) into core.regions; a message."""
+    res = load_regions(con, spec_path)
+    return None if res is None else res.message
 
 
 def ingest_spec(con: duckdb.DuckDBPyConnection, spec_path: str | Path,
@@ -868,7 +896,8 @@ def ingest_spec(con: duckdb.DuckDBPyConnection, spec_path: str | Path,
         if not files:
             raise UserError(f"{spec.spec_file}: [source.{spec.name}] path '{spec.path}' "
                             "matches no files")
-    summary.regions = ingest_regions(con, spec_path)
+    regions = load_regions(con, spec_path)
+    summary.regions = None if regions is None else regions.message
     for spec, files in matched:
         for path in files:
             summary.files.append(ingest_file(con, spec, path))

@@ -101,8 +101,32 @@ _VIEWS = [
                          ORDER BY as_of DESC, finished_at DESC LIMIT 1)""",
 ]
 
+#: Version 6: line lists, region hierarchies, signal frequencies (issue 15).
+_V6 = [
+    # Line-list records: the record's id when the feed maps one (NULL for counts).
+    "ALTER TABLE raw.reports ADD COLUMN IF NOT EXISTS record_id VARCHAR",
+    # How the files of a line list combine: by_record_id | complete | increments (NULL: counts).
+    "ALTER TABLE raw.feed_files ADD COLUMN IF NOT EXISTS list_files VARCHAR",
+    # Region hierarchy: parent region, depth below the top (0 = top), number of direct children
+    # (0 = a leaf); a parent's series is the aggregate of its children's.
+    "ALTER TABLE core.regions ADD COLUMN IF NOT EXISTS parent VARCHAR",
+    "ALTER TABLE core.regions ADD COLUMN IF NOT EXISTS level INTEGER",
+    "ALTER TABLE core.regions ADD COLUMN IF NOT EXISTS n_children INTEGER",
+    # One row per signal: its time resolution, as declared by the feed that first brought it.
+    """CREATE TABLE IF NOT EXISTS core.signals (
+        signal VARCHAR PRIMARY KEY, frequency VARCHAR NOT NULL, week_start VARCHAR,
+        source VARCHAR NOT NULL, file_id BIGINT, path VARCHAR)""",
+    # The region tree core.observations' parent rows were last derived with (vintages step).
+    "CREATE TABLE IF NOT EXISTS core.vintaged_tree (region VARCHAR, parent VARCHAR)",
+    # Signals ingested before version 6 were daily.
+    """INSERT INTO core.signals SELECT r.signal, 'daily', NULL, arg_min(r.source, r.file_id),
+        min(r.file_id), arg_min(f.path, r.file_id)
+        FROM raw.reports r LEFT JOIN raw.feed_files f USING (file_id)
+        WHERE r.signal NOT IN (SELECT signal FROM core.signals) GROUP BY r.signal""",
+]
+
 #: Forward migrations: (version, statements).  Append new steps; never edit a shipped one.
-MIGRATIONS: list[tuple[int, list[str]]] = [(1, _V1)]
+MIGRATIONS: list[tuple[int, list[str]]] = [(1, _V1), (6, _V6)]
 SCHEMA_VERSION = MIGRATIONS[-1][0]
 
 

@@ -21,15 +21,18 @@ import numpy as np
 import pandas as pd
 
 from tallywave.pipeline.frames import SeriesBlock
+from tallywave.pipeline.hierarchy import aggregate_parents
 from tallywave.pipeline.store import transaction
 
-#: Latest file of each snapshot row (a re-issued snapshot replaces the earlier file).
+#: Latest file of each snapshot row (a re-issued snapshot replaces the earlier file); ``step`` is
+#: the days between two reference dates of the signal (7 for weekly signals).
 _SNAPSHOTS = """WITH snap AS (
-    SELECT source, region, signal, ref_date, as_of, value, value_kind, file_id
-    FROM raw.reports
-    WHERE {where}
-    QUALIFY row_number() OVER (PARTITION BY source, region, signal, as_of, ref_date
-                               ORDER BY file_id DESC) = 1
+    SELECT r.source, r.region, r.signal, r.ref_date, r.as_of, r.value, r.value_kind, r.file_id,
+           CASE WHEN s.frequency = 'weekly' THEN 7 ELSE 1 END AS step
+    FROM raw.reports r LEFT JOIN core.signals s USING (signal)
+    WHERE r.value_kind <> 'records' AND r.{where}
+    QUALIFY row_number() OVER (PARTITION BY r.source, r.region, r.signal, r.as_of, r.ref_date
+                               ORDER BY r.file_id DESC) = 1
 )"""
 
 #: Daily values of every snapshot: daily feeds as they are; cumulative feeds differenced within
@@ -41,9 +44,37 @@ _DIFFERENCED = """daily AS (
            CASE WHEN prev_value IS NULL THEN value ELSE value - prev_value END, file_id
     FROM cum WHERE prev_value IS NOT NULL OR first_snapshot
     UNION ALL
-    SELECT region, signal, unnest(range(prev_ref + 1, ref_date, INTERVAL 1 DAY))::DATE,
+    SELECT region, signal, unnest(range(prev_ref + step, ref_date, to_days(step)))::DATE,
            as_of, 0.0, file_id
-    FROM cum WHERE prev_ref IS NOT NULL AND ref_date - prev_ref > 1
+    FROM cum WHERE prev_ref IS NOT NULL AND ref_date - prev_ref > step
+)"""
+
+#: Line lists: the records that count (every file merged by record id, the latest version of a
+#: record winning; or the newest complete list of a source; or every increment), then the value
+#: of (region, signal, ref_date) on D = number of those records reported on or before D.  Files
+#: are ordered by their as_of, then by arrival (file_id); files without an as_of by arrival.
+_RECORDS = """rec_files AS (
+    SELECT file_id, source, list_files,
+           row_number() OVER (PARTITION BY source ORDER BY as_of DESC NULLS LAST,
+                              file_id DESC) AS newest
+    FROM raw.feed_files
+    WHERE status IN ('accepted', 'partial') AND list_files IS NOT NULL
+),
+recs AS (
+    SELECT r.region, r.signal, r.ref_date, r.as_of, r.file_id
+    FROM raw.reports r JOIN rec_files f USING (file_id)
+    WHERE r.value_kind = 'records' AND r.signal IN (SELECT signal FROM _affected)
+      AND (f.list_files <> 'complete' OR f.newest = 1)
+    QUALIFY f.list_files <> 'by_record_id'
+         OR row_number() OVER (PARTITION BY r.source, r.record_id
+                               ORDER BY f.newest, r.line_no DESC) = 1
+),
+rec_daily AS (
+    SELECT region, signal, ref_date, as_of, file_id,
+           sum(n) OVER (PARTITION BY region, signal, ref_date ORDER BY as_of
+                        ROWS UNBOUNDED PRECEDING)::DOUBLE AS value
+    FROM (SELECT region, signal, ref_date, as_of, count(*) AS n, max(file_id) AS file_id
+          FROM recs GROUP BY region, signal, ref_date, as_of)
 )"""
 
 _DAILY_SQL = """
@@ -56,12 +87,18 @@ cum AS (
     FROM snap WHERE value_kind = 'cumulative'
     WINDOW w AS (PARTITION BY source, region, signal, as_of ORDER BY ref_date)
 ),
-{differenced}
-SELECT region, signal, ref_date, as_of, value, file_id FROM daily
+{records},
+{differenced},
+every AS (
+    SELECT region, signal, ref_date, as_of, value, file_id FROM daily
+    UNION ALL
+    SELECT region, signal, ref_date, as_of, value, file_id FROM rec_daily
+)
+SELECT region, signal, ref_date, as_of, value, file_id FROM every
 QUALIFY value IS DISTINCT FROM lag(value) OVER (PARTITION BY region, signal, ref_date
                                                 ORDER BY as_of, file_id)
 """.format(snapshots_affected=_SNAPSHOTS.format(where="signal IN (SELECT signal FROM _affected)"),
-                              differenced=_DIFFERENCED)
+           records=_RECORDS, differenced=_DIFFERENCED)
 
 
 #: The rows the new files add when every one of them is later than all earlier snapshots of
@@ -76,7 +113,7 @@ seen AS (  -- cumulative series that already had a snapshot before the new files
       AND file_id IN (SELECT file_id FROM core.vintaged_files)
 ),
 cum AS (
-    SELECT s.region, s.signal, s.ref_date, s.as_of, s.value, s.file_id,
+    SELECT s.region, s.signal, s.ref_date, s.as_of, s.value, s.file_id, s.step,
         lag(s.value) OVER w AS prev_value,
         lag(s.ref_date) OVER w AS prev_ref,
         s.as_of = min(s.as_of) OVER (PARTITION BY s.source, s.region, s.signal)
@@ -119,37 +156,69 @@ def _appendable(con: duckdb.DuckDBPyConnection) -> bool:
     return new_min is not None and old_max is not None and new_min > old_max
 
 
-def update_observations(con: duckdb.DuckDBPyConnection) -> dict[str, int]:
+def update_observations(con: duckdb.DuckDBPyConnection, *,
+                        rebuild: bool = False) -> dict[str, int]:
     """Bring the value history of every signal that received new files up to date (one
     transaction).
 
-    ``core.observations`` stays a pure function of ``raw.reports``: a late-arriving older snapshot
-    is slotted into its place in the history rather than appended out of order (the signal's
-    history is rebuilt); new snapshots later than everything known (the daily case) only append
-    their changes, which gives the same rows without re-reading the whole history.
+    ``core.observations`` stays a pure function of ``raw.reports`` (and of the region tree in
+    ``core.regions``): a late-arriving older snapshot is slotted into its place in the history
+    rather than appended out of order (the signal's history is rebuilt); new snapshots later than
+    everything known (the daily case) only append their changes, which gives the same rows
+    without re-reading the whole history.  Line lists always rebuild their signals (a later file
+    may revise or drop records).  Parent regions get the sums of their leaves.  A changed region
+    tree, or ``rebuild``, rebuilds every signal.
     """
     new = con.execute(
         "SELECT file_id FROM raw.feed_files WHERE status IN ('accepted', 'partial') "
         "AND file_id NOT IN (SELECT file_id FROM core.vintaged_files)"
     ).df()
-    if new.empty:
+    rebuild = rebuild or _tree_changed(con)
+    if new.empty and not rebuild:
         return {"files": 0, "signals": 0, "rows": 0}
     with transaction(con):
         con.register("_new_files", new)
-        con.execute("CREATE OR REPLACE TEMP TABLE _affected AS SELECT DISTINCT signal "
-                    "FROM raw.reports WHERE file_id IN (SELECT file_id FROM _new_files)")
-        if _appendable(con):
-            con.execute(f"INSERT INTO core.observations {_APPEND_SQL}")
+        if rebuild:
+            con.execute("CREATE OR REPLACE TEMP TABLE _affected AS SELECT DISTINCT signal "
+                        "FROM raw.reports")
+        else:  # a new line-list file affects every signal its source ever had
+            con.execute(
+                "CREATE OR REPLACE TEMP TABLE _affected AS SELECT DISTINCT signal "
+                "FROM raw.reports WHERE file_id IN (SELECT file_id FROM _new_files) "
+                "OR (value_kind = 'records' AND source IN (SELECT DISTINCT source "
+                "FROM raw.reports WHERE value_kind = 'records' "
+                "AND file_id IN (SELECT file_id FROM _new_files)))")
+        records = con.execute("SELECT count(*) FROM (SELECT 1 FROM raw.reports WHERE "
+                              "value_kind = 'records' AND signal IN (SELECT signal FROM "
+                              "_affected) LIMIT 1)").fetchall()[0][0]
+        if not rebuild and not records and _appendable(con):
+            con.execute("INSERT INTO core.observations (region, signal, ref_date, as_of, value, "
+                        f"file_id) {_APPEND_SQL}")
         else:
             con.execute("DELETE FROM core.observations "
                         "WHERE signal IN (SELECT signal FROM _affected)")
-            con.execute(f"INSERT INTO core.observations {_DAILY_SQL}")
+            con.execute("INSERT INTO core.observations (region, signal, ref_date, as_of, value, "
+                        f"file_id) {_DAILY_SQL}")
+        n_parent = aggregate_parents(con)
+        con.execute("DELETE FROM core.vintaged_tree")
+        con.execute("INSERT INTO core.vintaged_tree SELECT region, parent FROM core.regions "
+                    "WHERE parent IS NOT NULL")
         con.execute("INSERT INTO core.vintaged_files SELECT file_id FROM _new_files")
         con.unregister("_new_files")
         n_sig = con.execute("SELECT count(*) FROM _affected").fetchall()[0][0]
         n_rows = con.execute("SELECT count(*) FROM core.observations WHERE signal IN "
                              "(SELECT signal FROM _affected)").fetchall()[0][0]
-    return {"files": len(new), "signals": int(n_sig), "rows": int(n_rows)}
+    return {"files": len(new), "signals": int(n_sig), "rows": int(n_rows),
+            "parent_rows": n_parent}
+
+
+def _tree_changed(con: duckdb.DuckDBPyConnection) -> bool:
+    """True when the region tree differs from the one the parent rows were derived with."""
+    return bool(con.execute(
+        "SELECT count(*) FROM ((SELECT region, parent FROM core.regions WHERE parent IS NOT NULL "
+        "EXCEPT SELECT region, parent FROM core.vintaged_tree) UNION ALL "
+        "(SELECT region, parent FROM core.vintaged_tree EXCEPT "
+        "SELECT region, parent FROM core.regions WHERE parent IS NOT NULL))").fetchall()[0][0])
 
 
 def observations_as_of(

@@ -64,6 +64,14 @@ Outcome column: status in raw.feed_files, then "line → reason words" of the qu
 | spec_invalid_toml         | broken TOML                       | UserError "not valid TOML"       |
 | spec_bad_date_format      | ``date_format = "%Q"``            | UserError "date_format '%Q'"     |
 
+Line lists, weekly feeds, region hierarchies and their spec keys (``NEW_KEY_CASES``): every new
+key refused with one line naming the file, source and key when unknown, of the wrong type or out
+of its set (``spec_*``); records quarantined for a reported_on before ref_date or after the
+file's as_of, missing / unparseable dates, a missing record_id, the same record_id twice in one
+file (duplicate or conflicting versions) (``records_*``); weekly rows on the wrong weekday or for
+an unfinished week, ISO week labels, Sunday-start weeks, a signal already known as daily
+(``weekly_*``); a cycle in the region tree or a region that is its own parent.
+
 Exit codes through the CLI: 0 for accepted / partial / empty, 2 for a failed file or a spec error.
 """
 
@@ -359,6 +367,198 @@ CASES: list[Case] = [
     Case("spec_bad_date_format", text(H + OK), spec=bad_spec("date_format"),
          words=("date_format '%Q'",)),
 ]
+
+
+# ---- issue 15: line lists, weekly feeds, region hierarchies (new spec keys) ----
+
+RH = "id,site,onset,reported\n"  # a line-list header
+REC_OK = "r1,Ivel,2026-01-03,2026-01-04\n"  # a valid record (file as_of 2026-01-10)
+REC_COLS = '{ region = "site", ref_date = "onset", reported_on = "reported", record_id = "id" }'
+
+
+def custom_spec(body: str, regions: str | None = None) -> Callable[[Path], Path]:
+    """A writer for a one-source spec (TOML body of [source.district]) and optional regions.csv
+    (then a [regions] table with columns region, population, parent)."""
+    def w(case_dir: Path) -> Path:
+        spec = case_dir / "hostile.toml"
+        text_ = "[source.district]\n" + textwrap.dedent(body)
+        if regions is not None:
+            (case_dir / "regions.csv").write_text(regions)
+            text_ += ('\n[regions]\npath = "regions.csv"\n'
+                      'columns = { region = "region", population = "population", '
+                      'parent = "parent" }\n')
+        spec.write_text(text_)
+        return spec
+    return w
+
+
+def records_spec(cols: str = REC_COLS, extra: str = "", fmt: str = "csv",
+                 as_of: str | None = '{ from = "filename", pattern = "%Y-%m-%d" }'
+                 ) -> Callable[[Path], Path]:
+    """A line-list spec (signal "tests", value_kind "records")."""
+    body = (f'path = "feed/*.{fmt}"\nformat = "{fmt}"\nsignal = "tests"\n'
+            f'value_kind = "records"\ncolumns = {cols}\n'
+            + (f"as_of = {as_of}\n" if as_of else "") + extra)
+    return custom_spec(body)
+
+
+def weekly_spec(extra: str = "", signal: str = "weekly_cases") -> Callable[[Path], Path]:
+    """A weekly daily-count spec (as_of from the file name)."""
+    return custom_spec(
+        f'path = "feed/*.csv"\nformat = "csv"\nsignal = "{signal}"\nvalue_kind = "daily"\n'
+        'as_of = { from = "filename", pattern = "%Y-%m-%d" }\n'
+        'columns = { region = "region", ref_date = "date", value = "value" }\n'
+        'frequency = "weekly"\n' + extra)
+
+
+def count_spec(extra: str = "", cols: str = '{ region = "region", ref_date = "date", '
+               'value = "value" }', kind: str = "daily") -> Callable[[Path], Path]:
+    """A count spec with extra TOML lines (for refused keys)."""
+    return custom_spec(
+        f'path = "feed/*.csv"\nformat = "csv"\nsignal = "cases"\nvalue_kind = "{kind}"\n'
+        f'as_of = {{ from = "filename", pattern = "%Y-%m-%d" }}\ncolumns = {cols}\n' + extra)
+
+
+def _rec(rid: str, site: str, ref: str) -> tuple[str, str, float]:
+    """An accepted record as read back from raw.reports (region, ref_date, value 1)."""
+    del rid
+    return (site, ref, 1.0)
+
+
+NEW_KEY_CASES: list[Case] = [
+    # -- spec keys refused with one line naming the file, the source and the key --
+    Case("spec_records_with_value", text(RH + REC_OK),
+         spec=records_spec('{ region = "site", ref_date = "onset", value = "n" }'),
+         words=("[source.district]", "value_kind = \"records\"", "not 'value'")),
+    Case("spec_records_no_reported_on", text(RH + REC_OK),
+         spec=records_spec('{ region = "site", ref_date = "onset" }'),
+         words=("[source.district]", "reported_on")),
+    Case("spec_column_not_text", text(RH + REC_OK),
+         spec=records_spec('{ region = "site", ref_date = "onset", reported_on = "reported", '
+                           'record_id = 5 }'),
+         words=("columns.record_id must be a column name",)),
+    Case("spec_value_kind_unknown", text(H + OK), spec=count_spec(kind="events"),
+         words=("value_kind must be one of cumulative, daily, records", "'events'")),
+    Case("spec_frequency_not_text", text(H + OK), spec=count_spec("frequency = 7\n"),
+         words=("frequency must be one of daily, weekly", "7")),
+    Case("spec_frequency_unknown", text(H + OK), spec=count_spec('frequency = "monthly"\n'),
+         words=("frequency must be one of daily, weekly", "'monthly'")),
+    Case("spec_week_start_on_daily", text(H + OK), spec=count_spec('week_start = "sunday"\n'),
+         words=("week_start applies only with frequency = \"weekly\"",)),
+    Case("spec_week_start_unknown", text(H + OK), spec=weekly_spec('week_start = "tuesday"\n'),
+         words=("week_start must be one of monday, sunday", "'tuesday'")),
+    Case("spec_week_date_not_text", text(H + OK), spec=weekly_spec("week_date = 1\n"),
+         words=("week_date must be one of last_day, first_day",)),
+    Case("spec_iso_week_sunday_start", text(H + OK),
+         spec=weekly_spec('week_start = "sunday"\ndate_format = "iso_week"\n'),
+         words=("date_format = \"iso_week\" needs", "Monday-start")),
+    Case("spec_weekly_line_list", text(RH + REC_OK),
+         spec=records_spec(extra='frequency = "weekly"\n'),
+         words=("frequency = \"weekly\" is for counts",)),
+    Case("spec_list_files_on_counts", text(H + OK), spec=count_spec('list_files = "complete"\n'),
+         words=("list_files applies only to value_kind = \"records\"",)),
+    Case("spec_list_files_with_record_id", text(RH + REC_OK),
+         spec=records_spec(extra='list_files = "increments"\n'),
+         words=("list_files does not apply with a record_id",)),
+    Case("spec_list_files_unknown", text(RH + REC_OK),
+         spec=records_spec('{ region = "site", ref_date = "onset", reported_on = "reported" }',
+                           extra='list_files = "all"\n'),
+         words=("list_files must be one of complete, increments", "'all'")),
+    Case("spec_as_of_unknown_subkey", text(H + OK),
+         spec=custom_spec('path = "feed/*.csv"\nformat = "csv"\nsignal = "cases"\n'
+                          'value_kind = "daily"\ncolumns = { region = "region", '
+                          'ref_date = "date", value = "value" }\nas_of = { from = "filename", '
+                          'pattern = "%Y-%m-%d", colour = "red" }\n'),
+         words=("unknown key 'as_of.colour'",)),
+    Case("spec_signal_not_text", text(H + OK),
+         spec=custom_spec('path = "feed/*.csv"\nformat = "csv"\nsignal = 5\n'
+                          'value_kind = "daily"\ncolumns = { region = "region", '
+                          'ref_date = "date", value = "value" }\n'
+                          'as_of = { from = "filename", pattern = "%Y-%m-%d" }\n'),
+         words=("signal must be non-empty text",)),
+    Case("spec_regions_cycle", text(H + OK),
+         spec=custom_spec(spec_text("feed/*.csv").split("\n", 1)[1],
+                          regions="region,population,parent\nIvel,10,Jura\nJura,,Kest\n"
+                                  "Kest,,Ivel\n"),
+         words=("regions.csv", "cycle", "Ivel → Jura → Kest → Ivel")),
+    Case("spec_regions_own_parent", text(H + OK),
+         spec=custom_spec(spec_text("feed/*.csv").split("\n", 1)[1],
+                          regions="region,population,parent\nIvel,10,Ivel\n"),
+         words=("region 'Ivel' is its own parent",)),
+    # -- line-list records: quarantined with a reason, the rest accepted --
+    Case("records_reported_before_ref",
+         text(RH + "r0,Ivel,2026-01-05,2026-01-04\n" + REC_OK), "partial",
+         ("reported_on 2026-01-04 is before ref_date 2026-01-05",),
+         rejected=((2, "is before ref_date", "r0,Ivel,2026-01-05,2026-01-04"),),
+         accepted={_rec("r1", "Ivel", "2026-01-03")}, spec=records_spec(), line_in_message=2),
+    Case("records_missing_dates",
+         text(RH + "r0,Ivel,,2026-01-04\nr2,Ivel,2026-01-03,\n" + REC_OK), "partial",
+         ("missing ref_date",),
+         rejected=((2, "missing ref_date", None), (3, "missing reported_on", None)),
+         accepted={_rec("r1", "Ivel", "2026-01-03")}, spec=records_spec(), line_in_message=2),
+    Case("records_unparseable_reported_on",
+         text(RH + "r0,Ivel,2026-01-03,soon\n" + REC_OK), "partial",
+         ("unparseable reported_on 'soon'",),
+         rejected=((2, "unparseable reported_on 'soon' (expected %Y-%m-%d)", None),),
+         accepted={_rec("r1", "Ivel", "2026-01-03")}, spec=records_spec(), line_in_message=2),
+    Case("records_reported_after_file_as_of",
+         text(RH + "r0,Ivel,2026-01-03,2026-01-12\n" + REC_OK), "partial",
+         ("reported_on 2026-01-12 is after the file's as_of 2026-01-10",),
+         rejected=((2, "is after the file's as_of", None),),
+         accepted={_rec("r1", "Ivel", "2026-01-03")}, spec=records_spec(), line_in_message=2),
+    Case("records_missing_record_id",
+         text(RH + " ,Ivel,2026-01-03,2026-01-04\nr2,Ivel,2026-01-03,2026-01-04\n"), "partial",
+         ("missing record_id",), rejected=((2, "missing record_id", None),),
+         accepted={_rec("r2", "Ivel", "2026-01-03")}, spec=records_spec(), line_in_message=2),
+    Case("records_conflicting_versions",
+         text(RH + "r1,Ivel,2026-01-03,2026-01-04\nr1,Ivel,2026-01-02,2026-01-04\n"
+              "r2,Jura,2026-01-03,2026-01-05\n"), "partial",
+         ("conflicting versions of record r1",),
+         rejected=((2, "conflicting versions", None), (3, "conflicting versions", None)),
+         accepted={_rec("r2", "Jura", "2026-01-03")}, spec=records_spec(), line_in_message=2),
+    Case("records_duplicate_identical", text(RH + REC_OK + REC_OK), "partial",
+         ("duplicate of an earlier row",), rejected=((3, "duplicate of an earlier row", None),),
+         accepted={_rec("r1", "Ivel", "2026-01-03")}, spec=records_spec(), line_in_message=3),
+    Case("records_without_id_repeat_is_two_events",
+         text("site,onset,reported\nIvel,2026-01-03,2026-01-04\nIvel,2026-01-03,2026-01-04\n"),
+         "accepted", spec=records_spec('{ region = "site", ref_date = "onset", '
+                                       'reported_on = "reported" }', as_of=None)),
+    Case("records_all_invalid", text(RH + "r0,Ivel,2026-01-05,2026-01-04\nr2,,2026-01-03,x\n"),
+         "failed", ("no valid rows", "is before ref_date"),
+         rejected=((2, "is before ref_date", None), (3, "missing region", None)),
+         spec=records_spec(), line_in_message=2),
+    Case("records_jsonl_nested_date",
+         jsonl([{"id": "r0", "site": "Ivel", "onset": "2026-01-03", "reported": {"d": 1}},
+                {"id": "r1", "site": "Ivel", "onset": "2026-01-03", "reported": "2026-01-04"}]),
+         "partial", ("reported_on is a JSON object, expected a string",),
+         rejected=((1, "reported_on is a JSON object", None),),
+         accepted={_rec("r1", "Ivel", "2026-01-03")}, spec=records_spec(fmt="jsonl"),
+         fmt="jsonl", line_in_message=1),
+    # -- weekly counts --
+    Case("weekly_wrong_weekday", text(H + "Ivel,2026-01-07,2\nIvel,2026-01-04,3\n"), "partial",
+         ("2026-01-07 is a Wednesday", "week's last day (Sunday"),
+         rejected=((2, "is a Wednesday", "Ivel,2026-01-07,2"),),
+         accepted={_row("Ivel", "2026-01-04", 3)}, spec=weekly_spec(), line_in_message=2),
+    Case("weekly_unfinished_week", text(H + "Ivel,2026-01-11,2\nIvel,2026-01-04,3\n"), "partial",
+         ("the week ending 2026-01-11 is not over on as_of 2026-01-10",),
+         rejected=((2, "is not over", None),),
+         accepted={_row("Ivel", "2026-01-04", 3)}, spec=weekly_spec(), line_in_message=2),
+    Case("weekly_iso_week_labels", text(H + "Ivel,2026-W01,2\nIvel,2025-W52,5\nIvel,W3,1\n"),
+         "partial", ("unparseable ref_date 'W3'",), rejected=((4, "unparseable", None),),
+         accepted={_row("Ivel", "2026-01-04", 2), _row("Ivel", "2025-12-28", 5)},
+         spec=weekly_spec('date_format = "iso_week"\n'), line_in_message=4),
+    Case("weekly_sunday_start_first_day",
+         text(H + "Ivel,2025-12-28,2\nIvel,2026-01-04,5\nIvel,2026-01-05,1\n"), "partial",
+         ("2026-01-05 is a Monday", "first day (Sunday: weeks start on Sunday)"),
+         rejected=((4, "is a Monday", None),),
+         accepted={_row("Ivel", "2026-01-03", 2), _row("Ivel", "2026-01-10", 5)},
+         spec=weekly_spec('week_start = "sunday"\nweek_date = "first_day"\n'),
+         line_in_message=4),
+    Case("weekly_signal_already_daily", text(H + "Ivel,2026-01-04,3\n"), "failed",
+         ("signal 'cases' is daily", "declares it weekly (monday-start weeks)",
+          "file not ingested"), spec=weekly_spec(signal="cases")),
+]
+CASES += NEW_KEY_CASES
 
 
 def test_corpus_size() -> None:

@@ -313,3 +313,115 @@ def test_repair_treats_series_independently(data) -> None:
     for i in range(y.shape[0]):
         alone = repair_series(y[i:i + 1], dates).clean
         np.testing.assert_allclose(together[i], alone[0], rtol=1e-12, atol=1e-9)
+
+
+# ---- line lists and region hierarchies (issue 15) ----
+
+LL_START = dt.date(2026, 1, 1)
+LL_PROPS = settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+RECORDS = st.lists(st.tuples(st.sampled_from(["Ash", "Elm", "Oak"]),  # region
+                             st.integers(0, 9),  # ref day
+                             st.integers(0, 5),  # reporting delay (days)
+                             st.integers(0, 3)),  # version day: export from which it is known
+                   min_size=1, max_size=40)
+
+
+def _ll_write(root: Path, records: list, record_id: bool, drop: set[int]) -> dict[int, list]:
+    """Exports on days 10..13: export k holds every record with version day <= k - 10 (a
+    complete list), minus the ``drop`` set in the last export.  With ``record_id`` a record's
+    later version moves its ref date one day earlier.  Returns {export day: rows}."""
+    (root / "list").mkdir()
+    out: dict[int, list] = {}
+    for k in range(4):
+        rows = []
+        for i, (reg, ref, delay, ver) in enumerate(records):
+            if ver > k or (k == 3 and i in drop and not record_id):
+                continue
+            moved = record_id and ver == 0 and k >= 2 and ref > 0 and i % 2 == 0
+            rows.append((f"r{i}", reg, ref - 1 if moved else ref, ref + delay))
+        out[10 + k] = rows
+        text = "id,site,onset,reported\n" + "".join(
+            f"{i},{reg},{LL_START + dt.timedelta(r)},{LL_START + dt.timedelta(p)}\n"
+            for i, reg, r, p in rows)
+        (root / "list" / f"x_{LL_START + dt.timedelta(10 + k)}.csv").write_text(text)
+    return out
+
+
+@LL_PROPS
+@given(records=RECORDS, record_id=st.booleans(), drop=st.sets(st.integers(0, 39), max_size=5))
+def test_line_list_vintages_equal_counts_of_reported_records(records, record_id, drop) -> None:
+    """For every D, the value known on D of (region, ref_date) is the number of the effective
+    records (the newest complete export; with record ids every record's newest version) with
+    reported_on <= D, computed independently with pandas."""
+    with tempfile.TemporaryDirectory() as tmp:
+        root = Path(tmp)
+        exports = _ll_write(root, records, record_id, drop)
+        cols = 'region = "site", ref_date = "onset", reported_on = "reported"'
+        cols += ', record_id = "id"' if record_id else ""
+        con, summary = _ingest(root, _spec(f"""
+            [source.ll]
+            path = "list/*.csv"
+            format = "csv"
+            signal = "cases"
+            value_kind = "records"
+            columns = {{ {cols} }}
+        """))
+        # identical exports are skipped (same bytes): the same list, nothing to add
+        assert all(f.status in ("accepted", "empty", "skipped") for f in summary.files)
+        if record_id:  # newest version of each record over all exports
+            newest: dict[str, tuple] = {}
+            for k in sorted(exports):
+                for row in exports[k]:
+                    newest[row[0]] = row
+            eff = pd.DataFrame(list(newest.values()), columns=["id", "site", "ref", "rep"])
+        else:
+            eff = pd.DataFrame(exports[max(k for k in exports if exports[k])],
+                               columns=["id", "site", "ref", "rep"])
+        for d in range(16):
+            want = eff[eff["rep"] <= d].groupby(["site", "ref"]).size()
+            want_d = {(s, "cases", LL_START + dt.timedelta(int(r))): float(n)
+                      for (s, r), n in want.items()}
+            assert _observed(con, LL_START + dt.timedelta(d)) == want_d
+
+
+@LL_PROPS
+@given(values=st.dictionaries(st.tuples(st.sampled_from(["d1", "d2", "d3", "d4"]),
+                                        st.integers(0, 6), st.integers(0, 3)),
+                              st.integers(0, 50), min_size=1, max_size=40))
+def test_parent_series_is_sum_of_children_at_every_as_of(values) -> None:
+    """Random daily snapshots of four districts in two provinces under one nation: for every
+    as_of, each parent's known value is the sum of its districts' known values."""
+    tree = {"d1": "p1", "d2": "p1", "d3": "p2", "d4": "p2", "p1": "nation", "p2": "nation"}
+    with tempfile.TemporaryDirectory() as tmp:
+        root = Path(tmp)
+        (root / "feed").mkdir()
+        by_snap: dict[int, list] = {}
+        for (reg, ref, snap), v in values.items():
+            by_snap.setdefault(snap, []).append((reg, ref, v))
+        for snap, rows in by_snap.items():
+            (root / "feed" / f"c_{LL_START + dt.timedelta(10 + snap)}.csv").write_text(
+                "region,date,value\n" + "".join(
+                    f"{r},{LL_START + dt.timedelta(d)},{v}\n" for r, d, v in rows))
+        (root / "regions.csv").write_text("region,population,parent\n" + "".join(
+            f"{r},100,{p}\n" for r, p in tree.items()))
+        con, _ = _ingest(root, _spec("""
+            [source.c]
+            path = "feed/*.csv"
+            format = "csv"
+            signal = "cases"
+            value_kind = "daily"
+            as_of = { from = "filename", pattern = "%Y-%m-%d" }
+            columns = { region = "region", ref_date = "date", value = "value" }
+            [regions]
+            path = "regions.csv"
+            columns = { region = "region", population = "population", parent = "parent" }
+        """))
+        leaves = {"p1": ["d1", "d2"], "p2": ["d3", "d4"], "nation": ["d1", "d2", "d3", "d4"]}
+        for d in range(10, 15):
+            obs = _observed(con, LL_START + dt.timedelta(d))
+            for parent, kids in leaves.items():
+                for ref in range(7):
+                    key = LL_START + dt.timedelta(ref)
+                    kid_vals = [obs[(k, "cases", key)] for k in kids if (k, "cases", key) in obs]
+                    assert obs.get((parent, "cases", key)) == (sum(kid_vals) if kid_vals
+                                                               else None)

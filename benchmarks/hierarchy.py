@@ -1,0 +1,154 @@
+"""Region hierarchy measurement: is a parent's own forecast at least as good as the sum of its
+children's medians?
+
+``python -m benchmarks.hierarchy [--regions 8] [--runs 6] [--seed N]`` writes an invented
+scenario with the simulator (``pipeline/simulate.write_scenario``), puts its districts under two
+provinces and one nation (``[regions]`` with a parent column), ingests it and runs the full
+pipeline (``pipeline.run.execute_run``) at ``--runs`` weekly as-of dates.  For every published
+forecast of a parent (model × signal × target date × horizon) it compares, against the
+scenario's true eventual counts (truth/final_counts.parquet, summed over the parent's leaves):
+
+* the absolute error of the parent's own median vs that of the sum of its children's medians;
+* the parent's WIS (Bracher et al. 2021, as ``models/scores.py`` computes it); the WIS of a
+  point forecast (median only, no intervals) is its absolute error, so ``err_sum_children`` is
+  also the WIS of the summed medians.
+
+Prints one row per model and level, and the overall ratio |error parent| / |error sum of
+medians| (< 1 = the parent's own forecast is better).  A measurement, never asserted in tests.
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import json
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from tallywave.models.scores import weighted_interval_score
+from tallywave.pipeline import store
+from tallywave.pipeline.ingest import ingest_spec
+from tallywave.pipeline.run import execute_run
+from tallywave.pipeline.settings import load_settings
+from tallywave.pipeline.simulate import write_scenario
+
+
+def hierarchy_scenario(out: Path, n_regions: int, seed: int, n_days: int = 160
+                       ) -> dict[str, str]:
+    """Write the scenario plus a two-level tree: districts → Upper / Lower → Realm.
+
+    Returns the parent of every region (districts and provinces)."""
+    write_scenario(out, n_regions=n_regions, n_days=n_days, n_snapshots=70, window=35, seed=seed)
+    reg = pd.read_csv(out / "regions.csv")
+    half = len(reg) // 2
+    tree = {d: ("Upper" if i < half else "Lower") for i, d in enumerate(reg["district"])}
+    tree |= {"Upper": "Realm", "Lower": "Realm"}
+    reg["province"] = reg["district"].map(tree)
+    provinces = pd.DataFrame({"district": ["Upper", "Lower"], "province": ["Realm", "Realm"]})
+    pd.concat([reg, provinces]).to_csv(out / "regions.csv", index=False)
+    spec = (out / "feeds.toml").read_text()
+    spec = spec.replace('columns = { region = "district", population = "population" }',
+                        'columns = { region = "district", population = "population", '
+                        'parent = "province" }')
+    (out / "feeds.toml").write_text(spec)
+    return tree
+
+
+def leaves_of(tree: dict[str, str]) -> dict[str, list[str]]:
+    """Every parent's leaf descendants."""
+    parents = set(tree.values())
+    out: dict[str, list[str]] = {}
+    for leaf in (r for r in tree if r not in parents):
+        node = tree.get(leaf)
+        while node is not None:
+            out.setdefault(node, []).append(leaf)
+            node = tree.get(node)
+    return out
+
+
+def measure(n_regions: int = 8, runs: int = 6, seed: int = 20260302,
+            models: list[str] | None = None) -> pd.DataFrame:
+    """Run the pipeline on the hierarchy scenario; one row per (model, parent, signal, target,
+    horizon) with the parent's and the summed children's errors and the parent's WIS."""
+    with tempfile.TemporaryDirectory() as tmp:
+        out = Path(tmp)
+        tree = hierarchy_scenario(out, n_regions, seed)
+        leaves = leaves_of(tree)
+        con = store.memory()
+        ingest_spec(con, out / "feeds.toml")
+        truth = pd.read_parquet(out / "truth" / "final_counts.parquet")
+        last = dt.date.fromisoformat(json.loads(
+            (out / "truth" / "scenario.json").read_text())["end"])
+        settings = load_settings(None)
+        if models:
+            (out / "s.toml").write_text(f"[defaults]\nmodels = {json.dumps(models)}\n")
+            settings = load_settings(out / "s.toml")
+        dates = [last - dt.timedelta(days=28 + 7 * k) for k in range(runs)][::-1]
+        run_ids = []
+        for d in dates:
+            run_ids.append(execute_run(con, d, settings, score_after=False)["run_id"])
+        fc = con.execute(
+            "SELECT model, region, signal, target_date, horizon_days, q_level, value "
+            "FROM out.forecasts WHERE run_id IN (SELECT unnest(?::VARCHAR[]))",
+            [run_ids]).df()
+    truth["ref_date"] = pd.to_datetime(truth["ref_date"])
+    fc["target_date"] = pd.to_datetime(fc["target_date"])
+    rows = []
+    tkey = truth.set_index(["region", "signal", "ref_date"])["value"]
+    for (model, signal, target, h), g in fc.groupby(["model", "signal", "target_date",
+                                                     "horizon_days"]):
+        med = g[g["q_level"] == 0.5].set_index("region")["value"]
+        for parent, kids in leaves.items():
+            if parent not in med.index or not all(k in med.index for k in kids):
+                continue
+            try:
+                y = float(sum(tkey[(k, signal, target)] for k in kids))
+            except KeyError:
+                continue
+            q = g[g["region"] == parent].sort_values("q_level")
+            levels, vals = q["q_level"].to_numpy(), q["value"].to_numpy()
+            score = float(weighted_interval_score(np.asarray([y]), levels, vals[None, :]).wis[0])
+            rows.append({"model": model, "parent": parent, "signal": signal,
+                         "level": "nation" if parent == "Realm" else "province",
+                         "horizon": int(h), "truth": y,
+                         "err_parent": abs(float(med[parent]) - y),
+                         "err_sum_children": abs(float(med[kids].sum()) - y),
+                         "wis_parent": score})
+    return pd.DataFrame(rows)
+
+
+def summary(df: pd.DataFrame, by: list[str]) -> pd.DataFrame:
+    """Mean errors per group and the ratio parent / sum of children's medians."""
+    g = df.groupby(by).agg(
+        n=("truth", "size"), mae_parent=("err_parent", "mean"),
+        mae_sum_children=("err_sum_children", "mean"), mean_wis_parent=("wis_parent", "mean"))
+    g["ratio"] = g["mae_parent"] / g["mae_sum_children"]
+    return g.round(3)
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Print the measurement table."""
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--regions", type=int, default=8)
+    ap.add_argument("--runs", type=int, default=6)
+    ap.add_argument("--seed", type=int, default=20260302)
+    ns = ap.parse_args(argv)
+    t0 = time.perf_counter()
+    df = measure(ns.regions, ns.runs, ns.seed)
+    pd.set_option("display.width", 140)
+    print(summary(df, ["model", "level"]).to_string(), end="\n\n")
+    print(summary(df, ["signal", "level"]).to_string(), end="\n\n")
+    print(summary(df, ["horizon"]).to_string())
+    tot = df["err_parent"].sum() / df["err_sum_children"].sum()
+    print(f"\nall models and levels: {len(df)} parent forecasts, "
+          f"|error| parent / sum of children's medians = {tot:.3f} "
+          f"({time.perf_counter() - t0:.0f} s)")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
