@@ -15,10 +15,12 @@ import duckdb
 NATURAL_KEYS: dict[str, tuple[str, ...]] = {
     "raw.feed_files": ("file_id",),
     "raw.rejected_rows": ("file_id", "line_no", "reason"),
-    "raw.reports": ("file_id", "region", "signal", "ref_date"),
+    "raw.reports": ("file_id", "line_no", "region", "signal", "ref_date"),
     "core.schema_info": ("version",),
     "core.observations": ("region", "signal", "ref_date", "as_of"),
     "core.regions": ("region",),
+    "core.signals": ("signal",),
+    "core.vintaged_tree": ("region",),
     "core.vintaged_files": ("file_id",),
     "core.cleaned": ("run_id", "region", "signal", "ref_date"),
     "core.clean_actions": ("run_id", "region", "signal", "ref_date", "action", "detail"),

@@ -101,8 +101,8 @@ _VIEWS = [
                          ORDER BY as_of DESC, finished_at DESC LIMIT 1)""",
 ]
 
-#: Version 6: line lists, region hierarchies, signal frequencies (issue 15).
-_V6 = [
+#: Version 2: line lists, region hierarchies, signal frequencies (issue 15).
+_V2 = [
     # Line-list records: the record's id when the feed maps one (NULL for counts).
     "ALTER TABLE raw.reports ADD COLUMN IF NOT EXISTS record_id VARCHAR",
     # How the files of a line list combine: by_record_id | complete | increments (NULL: counts).
@@ -118,7 +118,7 @@ _V6 = [
         source VARCHAR NOT NULL, file_id BIGINT, path VARCHAR)""",
     # The region tree core.observations' parent rows were last derived with (vintages step).
     "CREATE TABLE IF NOT EXISTS core.vintaged_tree (region VARCHAR, parent VARCHAR)",
-    # Signals ingested before version 6 were daily.
+    # Signals ingested before version 2 were daily.
     """INSERT INTO core.signals SELECT r.signal, 'daily', NULL, arg_min(r.source, r.file_id),
         min(r.file_id), arg_min(f.path, r.file_id)
         FROM raw.reports r LEFT JOIN raw.feed_files f USING (file_id)
@@ -126,7 +126,7 @@ _V6 = [
 ]
 
 #: Forward migrations: (version, statements).  Append new steps; never edit a shipped one.
-MIGRATIONS: list[tuple[int, list[str]]] = [(1, _V1), (6, _V6)]
+MIGRATIONS: list[tuple[int, list[str]]] = [(1, _V1), (2, _V2)]
 SCHEMA_VERSION = MIGRATIONS[-1][0]
 
 

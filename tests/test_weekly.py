@@ -112,7 +112,7 @@ def test_run_refuses_weekly_signal_with_one_line(tmp_path: Path) -> None:
 
 
 def test_migration_records_existing_signals_as_daily(tmp_path: Path) -> None:
-    """A database written before version 6 gets a core.signals row (daily) for every signal."""
+    """A database written before version 2 gets a core.signals row (daily) for every signal."""
     db = tmp_path / "old.duckdb"
     con = duckdb.connect(str(db))
     con.execute("CREATE SCHEMA core")
