@@ -101,8 +101,15 @@ _VIEWS = [
                          ORDER BY as_of DESC, finished_at DESC LIMIT 1)""",
 ]
 
+#: Version 2: R_t and growth say which date they refer to (``'infection'``: R_t is published by
+#: date of infection, back-calculated through the signal's infection-to-reference-date delay).
+_V2 = [
+    "ALTER TABLE out.rt ADD COLUMN IF NOT EXISTS date_basis VARCHAR",
+    "ALTER TABLE out.growth ADD COLUMN IF NOT EXISTS date_basis VARCHAR",
+]
+
 #: Forward migrations: (version, statements).  Append new steps; never edit a shipped one.
-MIGRATIONS: list[tuple[int, list[str]]] = [(1, _V1)]
+MIGRATIONS: list[tuple[int, list[str]]] = [(1, _V1), (2, _V2)]
 SCHEMA_VERSION = MIGRATIONS[-1][0]
 
 
