@@ -134,6 +134,8 @@ class _Convolver:
         self.n_before = n_before
         self.n = fft.next_fast_len(n_days + n_before + pmf.size, real=True)
         self.f_hat = fft.rfft(pmf, self.n)
+        k = np.arange(self.f_hat.size)
+        self.back_hat = np.conj(self.f_hat) * np.exp(-2j * np.pi * k * n_before / self.n)
 
     def expected(self, lam: np.ndarray) -> np.ndarray:
         """mu_t = sum_d f_d lam_{t-d} for t = 0..T-1 (lam indexed from day -n_before)."""
@@ -142,10 +144,9 @@ class _Convolver:
 
     def back(self, ratio: np.ndarray) -> np.ndarray:
         """b_s = sum_t f_{t-s} ratio_t for s = -n_before..T-1 (the EM back-projection)."""
-        shape = ratio.shape[:-1] + (self.n,)
-        pad = np.zeros(shape)
-        pad[..., self.n_before : self.n_before + self.n_days] = ratio
-        full = fft.irfft(fft.rfft(pad, axis=-1) * np.conj(self.f_hat), self.n, axis=-1)
+        # ratio_t sits at position n_before + t of a zero-padded line: rfft pads the end, and a
+        # shift by n_before is a phase factor
+        full = fft.irfft(fft.rfft(ratio, self.n, axis=-1) * self.back_hat, self.n, axis=-1)
         return full[..., : self.n_before + self.n_days]
 
 
@@ -161,13 +162,14 @@ def _smooth121(x: np.ndarray) -> np.ndarray:
 
 
 def richardson_lucy(observed: Any, pmf: Any, *, n_iter: int = 20, smooth: bool = True,
-                    n_before: int | None = None, q_floor: float = 0.02) -> Deconvolution:
+                    n_before: int | None = None, q_floor: float = 0.02,
+                    start: np.ndarray | None = None) -> Deconvolution:
     """Back-calculate infections from counts (..., T) through the delay ``pmf``.
 
     EM for Poisson counts with mean ``mu = f * lambda`` (Richardson 1972; Lucy 1974; Becker,
     Watson & Carlin 1991): ``lambda_s <- lambda_s / q_s * sum_t f_{t-s} y_t / mu_t``, then (if
     ``smooth``) the EMS [1, 2, 1]/4 smoothing.  Starts from the counts moved back by the mean
-    delay.  Days with ``q_s < q_floor`` carry almost no information and are not updated by the
+    delay (or from ``start``, infections on days -n_before..T-1).  Days with ``q_s < q_floor`` carry almost no information and are not updated by the
     EM step (only smoothed).  A fixed ``n_iter`` keeps results independent of batching.
     """
     y = np.asarray(observed, dtype=float)
@@ -183,8 +185,8 @@ def richardson_lucy(observed: Any, pmf: Any, *, n_iter: int = 20, smooth: bool =
     nb = L if n_before is None else int(n_before)
     q = observability(f, n_days, nb)
     conv = _Convolver(f, n_days, nb)
-    lam = _initial_guess(y, f, nb)
-    upd = q >= q_floor
+    lam = _initial_guess(y, f, nb) if start is None else np.array(start, dtype=float)
+    upd = (q >= q_floor) & (q > 0.0)
     inv_q = np.where(upd, 1.0 / np.where(upd, q, 1.0), 0.0)
     for _ in range(int(n_iter)):
         mu = conv.expected(lam)
@@ -199,7 +201,12 @@ def richardson_lucy(observed: Any, pmf: Any, *, n_iter: int = 20, smooth: bool =
 
 
 def _initial_guess(y: np.ndarray, f: np.ndarray, n_before: int) -> np.ndarray:
-    """Counts moved back by the rounded mean delay, 7-day averaged, ends held flat, kept > 0."""
+    """Counts moved back by the rounded mean delay, as a start for the EM iterations.
+
+    Days inside the series take the centred 7-day average; beyond its ends the level is carried
+    on along the log-linear trend of the nearest 14 days (so the last, barely observed days
+    start near a continuation of the epidemic's course rather than a flat line); kept > 0.
+    """
     n_days = y.shape[-1]
     shift = round(float(np.dot(np.arange(f.size), f)))
     k = min(7, n_days)
@@ -207,11 +214,19 @@ def _initial_guess(y: np.ndarray, f: np.ndarray, n_before: int) -> np.ndarray:
     idx = np.arange(n_days)
     lo = np.clip(idx - k // 2, 0, n_days - k)
     avg = (cs[..., lo + k] - cs[..., lo]) / k
-    # infection day s takes the average count of day s + shift (clamped to the observed days)
-    s = np.arange(-n_before, n_days)
-    src = np.clip(s + shift, 0, n_days - 1)
-    lam = avg[..., src]
     level = np.maximum(avg.mean(axis=-1, keepdims=True), 1e-12)
+    s = np.arange(-n_before, n_days) + shift  # the count day each infection day is read from
+    lam = avg[..., np.clip(s, 0, n_days - 1)]
+    m = min(14, n_days)
+    if m >= 7:
+        tt = np.arange(m) - (m - 1) / 2.0
+        for ends, sel in ((slice(n_days - m, n_days), s > n_days - 1 - k // 2),
+                          (slice(0, m), s < k // 2)):
+            ly = np.log(y[..., ends] + 0.5)
+            slope = np.clip((ly * tt).sum(axis=-1, keepdims=True) / (tt**2).sum(), -0.3, 0.3)
+            mid = ends.start + (m - 1) / 2.0
+            fit = np.exp(ly.mean(axis=-1, keepdims=True) + slope * (s[sel] - mid)) - 0.5
+            lam[..., sel] = np.maximum(fit, 0.0)
     return np.maximum(lam, 1e-3 * level)
 
 

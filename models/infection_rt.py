@@ -50,6 +50,8 @@ from tallywave.models.renewal import (
 
 __all__ = ["InfectionRt"]
 
+_ALL = slice(None)
+_EXCESS_FLOOR = 2.0  # our choice, set by simulation: see _week_excess
 _CHI2_1_MEDIAN = 0.45493642311957283  # median of chi-square(1): scipy.stats.chi2(1).median()
 
 
@@ -267,12 +269,14 @@ class InfectionRt:
         """NB size k of daily infections per series, from the counts of days before ``end``.
 
         Weekly totals ``Y_s`` (7-day sums, free of weekday effects) are compared with the
-        log-linear interpolation of their neighbours, ``sqrt(Y_{s-7} Y_{s+7})``.  For NB
-        infections the variance of a weekly total of counts is ``M + G (M/7)^2 / k`` with
-        ``G = sum_u (sum_{t<7} f_{t-u})^2`` (the delay spreads an infection day's excess over
-        neighbouring weeks); the interpolation adds half of it.  ``1/k >= 0`` is chosen so that
-        the median of the squared standardised residuals is 0.455, the median of a chi-square
-        with one degree of freedom — robust to the few weeks of a change in transmission.
+        log-linear interpolation of their neighbours, ``sqrt(Y_{s-7} Y_{s+7})``.  Poisson
+        counting noise gives the residual a variance of 1.5 M (the neighbours add half a week's);
+        NB excess of the infections of a day u adds ``c_u^2 m^2 / k``, where
+        ``c_u = g_0(u) - (g_-(u) + g_+(u)) / 2`` and ``g`` are the shares of day u's counts that
+        the delay puts in the week and in the weeks before and after it.  ``1/k >= 0`` makes the
+        median of the squared standardised residuals 0.455, the median of a chi-square with one
+        degree of freedom — robust to the few weeks of a change in transmission.  (The
+        epidemic's own echo of a fluctuation in later weeks is not modelled: k errs large.)
         """
         n = y.shape[0]
         if self.dispersion is not None:
@@ -284,16 +288,12 @@ class InfectionRt:
         mid = week[:, 7:-7]
         pred = np.sqrt(week[:, :-14] * week[:, 14:])  # log-linear between the two neighbours
         use = pred >= 10.0
-        g = np.convolve(f, np.ones(7))  # share of one infection day's counts in a week
-        big_g = float(np.sum(g**2))
         res2 = np.where(use, (mid - pred) ** 2, np.nan)
-        scale = np.where(use, big_g * (pred / 7.0) ** 2, np.nan)
-
-        # z_s(kappa) = res2_s / (1.5 (pred_s + kappa scale_s)) falls with kappa and crosses the
+        scale = np.where(use, _week_excess(f) * (pred / 7.0) ** 2, np.nan)
+        # z_s(kappa) = res2_s / (1.5 pred_s + kappa scale_s) falls with kappa and crosses the
         # target at kappa_s, so median_s z_s(kappa) = target exactly at kappa = median_s kappa_s
-        # (the factor 1.5: the interpolation adds half a week's variance)
         with np.errstate(invalid="ignore", divide="ignore"):
-            kappa_s = (res2 / (1.5 * _CHI2_1_MEDIAN) - pred) / scale
+            kappa_s = (res2 / _CHI2_1_MEDIAN - 1.5 * pred) / scale
         enough = use.sum(axis=1) >= 7
         kappa = np.zeros(n)
         if enough.any():
@@ -315,16 +315,17 @@ class InfectionRt:
 
     # -- outputs -------------------------------------------------------------------------------
 
-    def quantiles(self, q_levels: Sequence[float] | np.ndarray) -> np.ndarray:
-        """Quantiles of the published gamma, (n_series, T, n_q); NaN where not estimable."""
+    def quantiles(self, q_levels: Sequence[float] | np.ndarray, days: slice = _ALL) -> np.ndarray:
+        """Quantiles of the published gamma, (n_series, T, n_q) (or the ``days`` asked for);
+        NaN where not estimable."""
         self._fitted()
-        return gamma_ppf_fast(self.shape_, self.scale_, q_levels)
+        return gamma_ppf_fast(self.shape_[:, days], self.scale_[:, days], q_levels)
 
-    def prob_above(self, threshold: float = 1.0) -> np.ndarray:
-        """P(R_t > threshold) under the published gamma, (n_series, T)."""
+    def prob_above(self, threshold: float = 1.0, days: slice = _ALL) -> np.ndarray:
+        """P(R_t > threshold) under the published gamma, (n_series, T) (or ``days``)."""
         self._fitted()
         with np.errstate(invalid="ignore"):
-            return special.gammaincc(self.shape_, threshold / self.scale_)
+            return special.gammaincc(self.shape_[:, days], threshold / self.scale_[:, days])
 
     def growth_rate(self, r_median: np.ndarray | None = None) -> np.ndarray:
         """Daily growth rate at the posterior median of R_t: the interval-weighted average of
@@ -340,6 +341,22 @@ class InfectionRt:
     def _fitted(self) -> None:
         if not hasattr(self, "shape_"):
             raise RuntimeError("InfectionRt is not fitted; call fit() first")
+
+
+def _week_excess(f: np.ndarray) -> float:
+    """sum_u c_u^2 for the weekly residual of :meth:`InfectionRt._dispersion_of`: c_u is the
+    share of day u's counts in the week minus half the shares in the weeks either side."""
+    L = f.size
+    u = np.arange(-L - 7, 14)  # infection days (week = count days 0..6)
+    cdf = np.concatenate([[0.0], np.cumsum(f)])
+
+    def share(t0: int) -> np.ndarray:  # share of day-u counts on days t0..t0+6
+        hi = np.clip(t0 + 7 - u, 0, L)
+        lo = np.clip(t0 - u, 0, L)
+        return cdf[hi] - cdf[lo]
+
+    c = share(0) - 0.5 * (share(-7) + share(7))
+    return max(float(np.sum(c**2)), _EXCESS_FLOOR)
 
 
 def _span(ws: np.ndarray) -> int:

@@ -117,7 +117,7 @@ def _estimate_block(args: tuple) -> dict[str, Any]:
     The counts are the cleaned series with the nowcast window completed by the mean of the
     joint draws; each draw's change of that window is one mixture component.
     """
-    values, eventual, rep, start, delays, cfg = args
+    values, eventual, rep, start, delays, cfg, t0 = args
     values = np.nan_to_num(values)
     pmfs = interval_pmfs(cfg)
     draws = None
@@ -128,11 +128,12 @@ def _estimate_block(args: tuple) -> dict[str, Any]:
         values[:, start:start + t] = draws.mean(axis=0)
     est = estimator(cfg).fit(values, delays, pmfs if len(pmfs) > 1 else pmfs[0],
                              draws=draws, draws_start=start)
-    qs = est.quantiles(RT_LEVELS)
-    med = qs[..., RT_LEVELS.index(0.5)]
-    growth = est.growth_rate(med)
-    return {"q": qs, "mean": est.mean_, "p": np.clip(est.prob_above(1.0), 0.0, 1.0),
-            "growth": growth, "doubling": doubling_time(growth), "dependent": est.dependent_}
+    days = slice(t0, None)  # only the published days
+    qs = est.quantiles(RT_LEVELS, days)
+    growth = est.growth_rate(qs[..., RT_LEVELS.index(0.5)])
+    return {"q": qs, "mean": est.mean_[:, days], "p": np.clip(est.prob_above(1.0, days), 0, 1),
+            "growth": growth, "doubling": doubling_time(growth),
+            "dependent": est.dependent_[days]}
 
 
 def transmission(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, *,
@@ -150,19 +151,23 @@ def transmission(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Setti
         eventual, rep, start = nowcast_draws_for(con, run_id, signal, block,
                                                  int(cfg["rt_draws"]), int(cfg["seed"]))
         parts = batches(len(block.regions), int(cfg["batch_regions"]))
-        jobs = [(block.values[s], eventual[:, s], rep[s], start, delays, cfg) for s in parts]
+        t0 = max(0, len(block.dates) - int(cfg["rt_history_days"]))  # first published day
+        jobs = [(block.values[s], eventual[:, s], rep[s], start, delays, cfg, t0) for s in parts]
         results = mapper(_estimate_block, jobs)
-        t0 = max(0, len(block.dates) - int(cfg["rt_history_days"]))
-        dates = block.dates[t0:]
-        n_est = 0
+        good: list[tuple[slice, dict[str, np.ndarray]]] = []
         for part, res in zip(parts, results, strict=True):
-            regions = block.regions[part]
             if isinstance(res, BatchFailure):
-                skipped.extend(f"{signal}/{r}: {res.message[:200]}" for r in regions)
-                continue
-            cut = {k: (v[:, t0:] if k != "dependent" else v[t0:]) for k, v in res.items()}
-            n_est += int(np.isfinite(cut["mean"]).any(axis=1).sum())
-            n_rows += _write(con, run_id, signal, regions, dates, cut)
+                skipped.extend(f"{signal}/{r}: {res.message[:200]}" for r in block.regions[part])
+            else:
+                good.append((part, res))
+        n_est = 0
+        if good:
+            keep = np.concatenate([np.arange(len(block.regions))[p] for p, _ in good])
+            cut = {k: np.concatenate([r[k] for _, r in good]) for k in good[0][1]
+                   if k != "dependent"}
+            cut["dependent"] = good[0][1]["dependent"]
+            n_est = int(np.isfinite(cut["mean"]).any(axis=1).sum())
+            n_rows += _write(con, run_id, signal, block.regions[keep], block.dates[t0:], cut)
         lines.append(f"{signal}: {n_est}/{len(block.regions)} regions estimable")
     out = {"line": "; ".join(lines) or "no signals", "rows": n_rows}
     if skipped:
@@ -172,7 +177,7 @@ def transmission(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Setti
 
 def _write(con: duckdb.DuckDBPyConnection, run_id: str, signal: str, regions: np.ndarray,
            dates: np.ndarray, res: dict[str, np.ndarray]) -> int:
-    """Insert one batch's estimable cells into out.rt (long quantile form) and out.growth.
+    """Insert one signal's estimable cells into out.rt (long quantile form) and out.growth.
 
     Rows go in wide (one per region × day, one column per level) and DuckDB unnests the levels:
     building the long table in pandas costs several times more at 9 levels × millions of cells.
