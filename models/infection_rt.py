@@ -88,13 +88,15 @@ class InfectionRt:
     expected *counted* infections ``B`` are fewer), ``iterations`` of the EMS deconvolution,
     ``dispersion`` (NB size k; None = estimate per series, ``inf`` = Poisson), ``recent_days``
     and ``recent_share`` (a day is flagged dependent when more than ``recent_share`` of its
-    window's infections would be counted in the last ``recent_days`` days or later).
+    window's infections would be counted in the last ``recent_days`` days or later);
+    ``keep_components`` keeps the mixture's components of the days the draws reach
+    (``components_``: a list of (days, shape, rate, weight) for checking the published gamma).
     """
 
     def __init__(self, *, window: int = 7, align: str = "centre", prior_shape: float = 1.0,
                  prior_scale: float = 5.0, min_infections: float = 12.0, iterations: int = 10,
                  dispersion: float | None = None, recent_days: int = 14,
-                 recent_share: float = 0.1) -> None:
+                 recent_share: float = 0.1, keep_components: bool = False) -> None:
         self.window = window
         self.align = align
         self.prior_shape = prior_shape
@@ -104,6 +106,7 @@ class InfectionRt:
         self.dispersion = dispersion
         self.recent_days = recent_days
         self.recent_share = recent_share
+        self.keep_components = keep_components
 
     # -- parameters ----------------------------------------------------------------------------
 
@@ -158,6 +161,7 @@ class InfectionRt:
         dy, start = self._draw_changes(draws, draws_start, y)
         decs = [richardson_lucy(y, f, n_iter=int(self.iterations), n_before=nb) for f in fs]
         k_hat = self._dispersion_of(y, fs[0], n_days if start is None else start)
+        self.components_: list[tuple[np.ndarray, np.ndarray, np.ndarray, float]] = []
         e1 = np.zeros((n, n_days))
         e2 = np.zeros((n, n_days))
         b_min = np.full((n, n_days), np.inf)
@@ -225,17 +229,28 @@ class InfectionRt:
         tail, d_ab = self._draw_sums(f, dec, ws, lo, hi, dy, start)
         m = dy.shape[0]
         n_s = tail.size
-        ph = phi[:, tail][:, None, :]
-        alpha = a0 + np.maximum(a_all[:, tail][:, None, :] + d_ab[..., :n_s], 0.0) / ph
+        inv_ph = 1.0 / phi[:, tail][:, None, :]
+        alpha = d_ab[..., :n_s]
+        alpha += a_all[:, tail][:, None, :]
+        np.maximum(alpha, 0.0, out=alpha)
+        alpha *= inv_ph
+        alpha += a0
         for k, wgt in enumerate(wk):
-            bk = b_all[k][:, tail][:, None, :] + d_ab[..., (k + 1) * n_s:(k + 2) * n_s]
-            beta = c0 + np.maximum(bk, 0.0) / ph
-            base_b = b_all[k][:, tail]
+            beta = d_ab[..., (k + 1) * n_s:(k + 2) * n_s]
+            beta += b_all[k][:, tail][:, None, :]
+            np.maximum(beta, 0.0, out=beta)
+            beta *= inv_ph
+            beta += c0
+            inv_b = np.divide(1.0, beta, out=beta)
+            ratio = alpha * inv_b  # component means alpha / beta
+            second = (ratio + inv_b) * ratio  # alpha (alpha + 1) / beta^2
+            if self.keep_components:
+                self.components_.append((tail, alpha.copy(), 1.0 / inv_b, wgt / m))
             # replace the single-component term of the tail by the average over the draws
-            alpha0, beta0 = a0 + a_all[:, tail] / phi[:, tail], c0 + base_b / phi[:, tail]
-            e1[:, tail] += wgt * ((alpha / beta).sum(axis=1) / m - alpha0 / beta0)
-            e2[:, tail] += wgt * ((alpha * (alpha + 1.0) / beta**2).sum(axis=1) / m
-                                  - alpha0 * (alpha0 + 1.0) / beta0**2)
+            alpha0 = a0 + a_all[:, tail] / phi[:, tail]
+            beta0 = c0 + b_all[k][:, tail] / phi[:, tail]
+            e1[:, tail] += wgt * (ratio.sum(axis=1) / m - alpha0 / beta0)
+            e2[:, tail] += wgt * (second.sum(axis=1) / m - alpha0 * (alpha0 + 1.0) / beta0**2)
 
     @staticmethod
     def _draw_sums(f: np.ndarray, dec: Deconvolution, ws: np.ndarray, lo: int, hi: int,

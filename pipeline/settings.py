@@ -69,7 +69,7 @@ SPEC: dict[str, Setting] = {
         "name (defaults: the demo simulator's delays)"),
     "rt_deconvolution_iterations": Setting(10, "EMS steps of the back-calculation of "
                                            "infections"),
-    "rt_draws": Setting(100, "nowcast joint draws mixed into R_t (at most "
+    "rt_draws": Setting(50, "nowcast joint draws mixed into R_t (the first ones; at most "
                         "`nowcast_joint_draws`)"),
     "rt_prior_mean": Setting(5.0, "mean of the gamma prior on R (Cori et al. 2013 use 5)"),
     "rt_prior_sd": Setting(5.0, "sd of the gamma prior on R (Cori et al. 2013 use 5)"),
