@@ -194,15 +194,18 @@ def accuracy(inp: Inputs, n_regions: int = 100, max_cells: int = 3000) -> list[s
             fits[m] = est.fit(values, tr.delay_pmfs(cfg, sig), pmfs[0], draws=draws,
                               draws_start=start)
         est = fits[int(cfg["rt_draws"])]
-        (days, alpha, beta, _), = est.components_
-        ok = est.estimable_[:, days]
-        rr, tt = np.nonzero(ok)
-        if rr.size == 0:
+        if not est.components_:
             continue
-        pick = np.random.default_rng(0).permutation(rr.size)[:max_cells]
-        rr, tt = rr[pick], tt[pick]
-        a = alpha[rr, :, tt].T  # (m, cells)
-        th = 1.0 / beta[rr, :, tt].T
+        (rows, days, alpha, beta, _), = est.components_
+        ok = est.estimable_[np.ix_(rows, days)]
+        ri, tt = np.nonzero(ok)
+        if ri.size == 0:
+            continue
+        pick = np.random.default_rng(0).permutation(ri.size)[:max_cells]
+        ri, tt = ri[pick], tt[pick]
+        rr = rows[ri]
+        a = alpha[ri, :, tt].T  # (m, cells)
+        th = 1.0 / beta[ri, :, tt].T
         w = np.full(a.shape[0], 1.0 / a.shape[0])
         exact = _gamma_mixture_ppf(a, th, w, levels)
         fast = est.quantiles(levels)[rr, days[tt]]

@@ -14,8 +14,9 @@ are the convolution ``mu_t = sum_d f_d lambda_{t-d}`` of the infection curve ``l
   fixed number of steps, vectorised over series.  The update divides by ``q_s`` (Goldstein et
   al. 2009), so the estimates of partly observed days stay unbiased while their information,
   carried by ``q_s``, shrinks.
-* :func:`allocation_operator`: the linear response of one EM step to a change of the counts of
-  some days (how a nowcast draw moves the back-calculated infections).
+* :func:`allocation_operator` / :func:`response_operator`: the linear response of one EM step /
+  of the whole deconvolution to a change of the counts of some days (how a nowcast draw moves
+  the back-calculated infections, without a new deconvolution per draw).
 
 Array convention: time is the last axis; infections carry ``n_before`` extra days before the
 first count (infections whose counts fall partly before the series).
@@ -36,6 +37,7 @@ __all__ = [
     "delay_pmf",
     "delay_stack",
     "observability",
+    "response_operator",
     "richardson_lucy",
     "rounded_gamma_pmf",
 ]
@@ -151,13 +153,10 @@ class _Convolver:
 
 
 def _smooth121(x: np.ndarray) -> np.ndarray:
-    """[1, 2, 1]/4 smoothing along the last axis, renormalised at both ends (EMS step)."""
-    out = 2.0 * x
-    out[..., 1:] += x[..., :-1]
-    out[..., :-1] += x[..., 1:]
-    out[..., 1:-1] *= 0.25
-    out[..., 0] /= 3.0
-    out[..., -1] /= 3.0
+    """[1, 2, 1]/4 smoothing along the last axis (the EMS step); the first and last days are
+    left as they are, so a trend runs on to the ends instead of being pulled back by them."""
+    out = x.copy()
+    out[..., 1:-1] = 0.25 * (x[..., :-2] + x[..., 2:]) + 0.5 * x[..., 1:-1]
     return out
 
 
@@ -252,3 +251,65 @@ def allocation_operator(deconv: Deconvolution, pmf: Any, obs_days: np.ndarray,
         inv_mu = np.where(mu > 0.0, 1.0 / mu, 0.0)
         scale = np.where(q > 0.0, lam / np.where(q > 0.0, q, 1.0), 0.0)
     return inv_mu[..., :, None] * g * scale[..., None, :]
+
+
+def response_operator(deconv: Deconvolution, pmf: Any, observed: Any, obs_days: np.ndarray,
+                      inf_days: np.ndarray, n_steps: int, q_floor: float = 0.02
+                      ) -> np.ndarray:
+    """Linear response of the back-calculated infections to the counts of ``obs_days``:
+    (..., t_obs, n_inf), the derivative of ``n_steps`` EMS steps taken at the fitted solution.
+
+    One step maps a change of the infections and counts to
+    ``d lambda' = S[c d lambda + lambda/q * back(d y / mu - y conv(d lambda) / mu^2)]`` (the
+    derivative of the EM update, ``c = back(y/mu)/q``; S the [1, 2, 1]/4 smoothing); pushing
+    each day's unit change through ``n_steps`` steps gives the operator.  With one step it is
+    :func:`allocation_operator` smoothed; with as many steps as the deconvolution itself it
+    reproduces what a new deconvolution of a changed series would give (tested against
+    refits).  ``inf_days`` must be a run of days ending on the last day; changes of days before
+    it are taken as 0.
+    """
+    f = delay_pmf(pmf)
+    y = np.asarray(observed, dtype=float)
+    nb = deconv.n_before
+    n_days = deconv.fitted.shape[-1]
+    if inf_days.size == 0 or inf_days[-1] != n_days - 1 or np.any(np.diff(inf_days) != 1):
+        raise ValueError("inf_days must be consecutive days ending on the last day")
+    o_days = np.arange(max(int(inf_days[0]), 0), n_days)
+    lag = o_days[None, :] - inf_days[:, None]  # t - s
+    g = np.where((lag >= 0) & (lag < f.size), f[np.clip(lag, 0, f.size - 1)], 0.0)
+    q_all = deconv.observability
+    upd = (q_all >= q_floor) & (q_all > 0.0)
+    inv_q_all = np.where(upd, 1.0 / np.where(upd, q_all, 1.0), 0.0)
+    mu_all = deconv.fitted
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.where(mu_all > 0.0, y / mu_all, 0.0)
+        inv_mu_all = np.where(mu_all > 0.0, 1.0 / mu_all, 0.0)
+    c = (_Convolver(f, n_days, nb).back(ratio) * inv_q_all)[..., inf_days + nb]
+    c = np.where(upd[inf_days + nb], c, 1.0)
+    gain = deconv.infections[..., inf_days + nb] * inv_q_all[inf_days + nb]
+    inv_mu = inv_mu_all[..., o_days]
+    curv = (y * inv_mu_all**2)[..., o_days]
+    lead = y.shape[:-1]
+    n_obs, n_inf, n_o = obs_days.size, inf_days.size, o_days.size
+    # the kick d y / mu of each unit change, projected back: constant over the steps
+    idx = obs_days - o_days[0]
+    back_kick = inv_mu[..., idx][..., :, None] * g.T[idx] * gain[..., None, :]
+    x = np.zeros(lead + (n_obs, n_inf))
+    d_em = np.empty_like(x)
+    open_left = inf_days[0] > -nb  # the run starts inside the series: zero beyond its start
+    for _ in range(int(n_steps)):
+        cv = (x.reshape(-1, n_inf) @ g).reshape(lead + (n_obs, n_o))
+        cv *= curv[..., None, :]
+        back = (cv.reshape(-1, n_o) @ g.T).reshape(lead + (n_obs, n_inf))
+        back *= gain[..., None, :]
+        np.multiply(x, c[..., None, :], out=d_em)
+        d_em += back_kick
+        d_em -= back
+        # [1, 2, 1]/4 smoothing; the last day kept, the first one zero-padded inside the series
+        x[..., 1:-1] = d_em[..., 1:-1]
+        x[..., 1:-1] *= 0.5
+        x[..., 1:-1] += 0.25 * (d_em[..., :-2] + d_em[..., 2:])
+        x[..., -1] = d_em[..., -1]
+        x[..., 0] = (0.5 * d_em[..., 0] + 0.25 * d_em[..., 1]) if open_left and n_inf > 1 \
+            else d_em[..., 0]
+    return x

@@ -18,8 +18,8 @@ al. 2020).  :class:`InfectionRt` publishes R_t on the date of infection:
    variance-to-mean ratio ``phi = 1 + sum q^2 m^2 / (k sum q m)`` divides A and B (the
    quasi-likelihood equivalent of the NB likelihood; McCullagh & Nelder 1989, ch. 9).
 4. **Mixture.** Components are every nowcast draw (its change of the counts moves the
-   infections by one linearised EM step, :func:`~tallywave.models.deconvolution.
-   allocation_operator`) × every candidate delay × every candidate generation interval; the
+   infections by the linearised deconvolution, :func:`~tallywave.models.deconvolution.
+   response_operator`) × every candidate delay × every candidate generation interval; the
    published distribution is the gamma with the mixture's mean and variance (law of total
    variance, so the mixture is never narrower than its components on average).
 
@@ -36,8 +36,8 @@ from scipy import special
 
 from tallywave.models.deconvolution import (
     Deconvolution,
-    allocation_operator,
     delay_stack,
+    response_operator,
     richardson_lucy,
 )
 from tallywave.models.renewal import (
@@ -90,7 +90,8 @@ class InfectionRt:
     and ``recent_share`` (a day is flagged dependent when more than ``recent_share`` of its
     window's infections would be counted in the last ``recent_days`` days or later);
     ``keep_components`` keeps the mixture's components of the days the draws reach
-    (``components_``: a list of (days, shape, rate, weight) for checking the published gamma).
+    (``components_``: a list of (series, days, shape, rate, weight) per delay and interval, the
+    draws on axis 1 of shape and rate; for checking the published gamma).
     """
 
     def __init__(self, *, window: int = 7, align: str = "centre", prior_shape: float = 1.0,
@@ -161,12 +162,12 @@ class InfectionRt:
         dy, start = self._draw_changes(draws, draws_start, y)
         decs = [richardson_lucy(y, f, n_iter=int(self.iterations), n_before=nb) for f in fs]
         k_hat = self._dispersion_of(y, fs[0], n_days if start is None else start)
-        self.components_: list[tuple[np.ndarray, np.ndarray, np.ndarray, float]] = []
+        self.components_: list[tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, float]] = []
         e1 = np.zeros((n, n_days))
         e2 = np.zeros((n, n_days))
         b_min = np.full((n, n_days), np.inf)
         for f, dec, w_d in zip(fs, decs, dw, strict=True):
-            self._accumulate(f, dec, ws, iw * w_d, k_hat, lo, hi, dy, start, e1, e2, b_min)
+            self._accumulate(y, f, dec, ws, iw * w_d, k_hat, lo, hi, dy, start, e1, e2, b_min)
         var = np.maximum(e2 - e1**2, 0.0)
         shape, scale = matched_gamma(e1, var)
         first = lo + _span(ws)  # the window and the interval inside the observed days
@@ -205,7 +206,8 @@ class InfectionRt:
             raise ValueError("draws must be finite and non-negative")
         return d - y[None, :, int(start): int(start) + t], int(start)
 
-    def _accumulate(self, f: np.ndarray, dec: Deconvolution, ws: np.ndarray, wk: np.ndarray,
+    def _accumulate(self, y: np.ndarray, f: np.ndarray, dec: Deconvolution, ws: np.ndarray,
+                    wk: np.ndarray,
                     k_hat: np.ndarray, lo: int, hi: int, dy: np.ndarray | None,
                     start: int | None, e1: np.ndarray, e2: np.ndarray, b_min: np.ndarray
                     ) -> None:
@@ -226,18 +228,26 @@ class InfectionRt:
             e2 += wgt * alpha * (alpha + 1.0) / beta**2
         if dy is None or start is None:
             return
-        tail, d_ab = self._draw_sums(f, dec, ws, lo, hi, dy, start)
+        # only series with a day the draws reach that can be published need the draws
+        reach = np.arange(max(0, start - f.size + 1 - hi), e1.shape[1])
+        can = np.all([b[:, reach] >= self.min_infections for b in b_all], axis=0).any(axis=1)
+        rows = np.flatnonzero(can & np.any(dy != 0.0, axis=(0, 2)))
+        if rows.size == 0:
+            return
+        sub = Deconvolution(lam[rows], q, dec.fitted[rows], nb)
+        tail, d_ab = self._draw_sums(y[rows], f, sub, ws, lo, hi, dy[:, rows], start)
         m = dy.shape[0]
         n_s = tail.size
-        inv_ph = 1.0 / phi[:, tail][:, None, :]
+        cell = np.ix_(rows, tail)
+        inv_ph = 1.0 / phi[cell][:, None, :]
         alpha = d_ab[..., :n_s]
-        alpha += a_all[:, tail][:, None, :]
+        alpha += a_all[cell][:, None, :]
         np.maximum(alpha, 0.0, out=alpha)
         alpha *= inv_ph
         alpha += a0
         for k, wgt in enumerate(wk):
             beta = d_ab[..., (k + 1) * n_s:(k + 2) * n_s]
-            beta += b_all[k][:, tail][:, None, :]
+            beta += b_all[k][cell][:, None, :]
             np.maximum(beta, 0.0, out=beta)
             beta *= inv_ph
             beta += c0
@@ -245,31 +255,44 @@ class InfectionRt:
             ratio = alpha * inv_b  # component means alpha / beta
             second = (ratio + inv_b) * ratio  # alpha (alpha + 1) / beta^2
             if self.keep_components:
-                self.components_.append((tail, alpha.copy(), 1.0 / inv_b, wgt / m))
-            # replace the single-component term of the tail by the average over the draws
-            alpha0 = a0 + a_all[:, tail] / phi[:, tail]
-            beta0 = c0 + b_all[k][:, tail] / phi[:, tail]
-            e1[:, tail] += wgt * (ratio.sum(axis=1) / m - alpha0 / beta0)
-            e2[:, tail] += wgt * (second.sum(axis=1) / m - alpha0 * (alpha0 + 1.0) / beta0**2)
+                self.components_.append((rows, tail, alpha.copy(), 1.0 / inv_b, wgt / m))
+            # replace the single-component term of these cells by the average over the draws
+            alpha0 = a0 + a_all[cell] / phi[cell]
+            beta0 = c0 + b_all[k][cell] / phi[cell]
+            e1[cell] += wgt * (ratio.sum(axis=1) / m - alpha0 / beta0)
+            e2[cell] += wgt * (second.sum(axis=1) / m - alpha0 * (alpha0 + 1.0) / beta0**2)
 
-    @staticmethod
-    def _draw_sums(f: np.ndarray, dec: Deconvolution, ws: np.ndarray, lo: int, hi: int,
-                   dy: np.ndarray, start: int) -> tuple[np.ndarray, np.ndarray]:
+    def _draw_sums(self, y: np.ndarray, f: np.ndarray, dec: Deconvolution, ws: np.ndarray,
+                   lo: int, hi: int, dy: np.ndarray, start: int
+                   ) -> tuple[np.ndarray, np.ndarray]:
         """Changes of A and of B (every interval) that each draw makes on the affected days.
 
         Returns the affected infection days ``tail`` (n_s,) and (n, m, (1 + K) n_s): first the
         change of A, then of B for each interval.  All maps are linear: the draw's change of
-        the counts -> infections (one EM step, per series) -> window sums (shared matrices).
+        the counts -> infections (the derivative of the deconvolution, per series) -> window
+        sums (shared matrices).
         """
         nb = dec.n_before
         n_days = dec.fitted.shape[-1]
         t = dy.shape[2]
-        obs_days = np.arange(start, start + t)
-        trimmed = np.flatnonzero(f > 0.0)
-        first_inf = max(-nb, start - int(trimmed[-1]))
+        longest = int(np.flatnonzero(f > 0.0)[-1])
+        first_inf = max(-nb, start - longest)
         inf_days = np.arange(first_inf, n_days)
-        alloc = allocation_operator(dec, f, obs_days, inf_days)  # (n, t, n_inf)
-        d_lam = np.matmul(np.moveaxis(dy, 0, 1), alloc)  # (n, m, n_inf)
+        # Counts of a day feed the infections of the days up to `longest` before it.  Where all
+        # of those are already fully counted one EM step already gives the response; the
+        # counts of the later days inform infections not yet fully counted, whose estimates
+        # move further over the deconvolution's steps: those take all of its steps.
+        q = dec.observability[nb:]
+        partial = np.flatnonzero(q < 0.999)
+        first_partial = int(partial[0]) if partial.size else n_days
+        split = int(np.clip(first_partial, start, start + t))
+        dyt = np.moveaxis(dy, 0, 1)  # (n, m, t)
+        d_lam = np.zeros(dyt.shape[:2] + (inf_days.size,))
+        for days, steps in ((np.arange(start, split), 1),
+                            (np.arange(split, start + t), int(self.iterations))):
+            if days.size:
+                op = response_operator(dec, f, y, days, inf_days, steps)  # (n, t', n_inf)
+                d_lam += np.matmul(dyt[..., days - start], op)
         tail = np.arange(max(0, first_inf - hi), n_days)
         q = dec.observability[inf_days + nb]
         win = _window_matrix(inf_days, tail, lo, hi) * q[:, None]  # (n_inf, n_s)

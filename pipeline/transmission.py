@@ -65,15 +65,42 @@ def nowcast_draws_for(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
     The nowcast stage's own joint draws when it ran on this connection; otherwise draws rebuilt
     from the published quantiles with days independent, one random stream per region.
     """
-    levels, q, rep, start = nowcast_quantiles(con, run_id, signal, block)
-    dates = block.dates[start:start + q.shape[1]]
+    rep, start = _reported(con, run_id, signal, block)
+    dates = block.dates[start:start + rep.shape[1]]
     joint = _first_joint_draws(con, signal, block, dates, n_draws)
     if joint is None:
+        levels, q, rep, start = nowcast_quantiles(con, run_id, signal, block)
         rnd = SeriesRandom(series_seeds(seed, signal, block.regions), len(block.regions))
         z = np.moveaxis(rnd.normal((n_draws, q.shape[1] + 1)), 0, 1)
         joint = draws_from_quantiles(levels, q, z)
         joint = np.where(np.isnan(q[..., 0])[None], np.nan, joint)
     return joint[:n_draws], rep, start
+
+
+def _reported(con: duckdb.DuckDBPyConnection, run_id: str, signal: str, block: SeriesBlock
+              ) -> tuple[np.ndarray, int]:
+    """The reported counts of this run's nowcast window, (n, t) aligned to ``block.regions``
+    (NaN where a region has none), and the window's first column in ``block``: the part of
+    :func:`~tallywave.pipeline.nowcast.nowcast_quantiles` the joint draws need (one level's
+    rows, not nine)."""
+    con.register("_rt_regions", pd.DataFrame({"region": block.regions.astype(str),
+                                              "r": np.arange(len(block.regions))}))
+    try:
+        got = con.execute(
+            "SELECT g.r, n.ref_date, n.reported FROM out.nowcast n JOIN _rt_regions g "
+            "USING (region) WHERE n.run_id = ? AND n.signal = ? AND n.q_level = 0.5",
+            [run_id, signal]).fetchnumpy()
+    finally:
+        con.unregister("_rt_regions")
+    n_reg = len(block.regions)
+    if len(got["r"]) == 0:
+        return np.zeros((n_reg, 0)), len(block.dates)
+    ref = np.asarray(got["ref_date"]).astype("datetime64[D]")
+    dates = np.unique(ref)
+    rep = np.full((n_reg, len(dates)), np.nan)
+    rep[np.asarray(got["r"], dtype=np.int64), np.searchsorted(dates, ref)] = \
+        _floats(got["reported"])
+    return rep, int(np.searchsorted(block.dates, dates[0]))
 
 
 def _first_joint_draws(con: duckdb.DuckDBPyConnection, signal: str, block: SeriesBlock,
@@ -105,8 +132,13 @@ def _first_joint_draws(con: duckdb.DuckDBPyConnection, signal: str, block: Serie
     draw = np.asarray(got["draw"], dtype=np.int64)
     out = np.full((int(draw.max()) + 1, len(block.regions), len(dates)), np.nan)
     out[draw, np.asarray(got["r"], dtype=np.int64), np.asarray(got["t"], dtype=np.int64)] = \
-        np.asarray(got["value"], dtype=float)
+        _floats(got["value"])
     return out
+
+
+def _floats(a: Any) -> np.ndarray:
+    """A fetched numeric column as floats, NULL as NaN."""
+    return np.ma.filled(np.ma.asarray(a, dtype=float), np.nan)
 
 
 def _day(d: Any) -> dt.date:

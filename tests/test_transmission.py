@@ -67,15 +67,22 @@ def simulate(r: np.ndarray, f: np.ndarray, n: int, level: tuple[float, float], k
 
 def nowcast(y: np.ndarray, rng: np.random.Generator, m: int = 50, window: int = 29
             ) -> tuple[np.ndarray, np.ndarray, int]:
-    """A nowcast of the last ``window`` days: reported counts (reporting delay gamma mean 3.5,
-    sd 2.5) and ``m`` joint draws of the eventual counts (reported + gamma-Poisson unreported)."""
+    """A calibrated nowcast of the last ``window`` days: the counts reported so far (reporting
+    delay gamma mean 3.5, sd 2.5) plus ``m`` joint draws of the unreported part (gamma-Poisson
+    around the expected shortfall of the day's week-averaged count).  Returns the counts with
+    the window completed by the draws' mean, the draws of the eventual counts (m, n, t) and the
+    window's first column."""
     n_days = y.shape[1]
     rep_cdf = np.cumsum(rounded_gamma_pmf(3.5, 2.5))
     frac = rep_cdf[np.minimum(np.arange(window)[::-1], rep_cdf.size - 1)]
     start = n_days - window
     rep = y.copy()
     rep[:, start:] = rng.binomial(y[:, start:].astype(np.int64), frac)
-    miss = rep[:, start:] * (1 - frac) / np.maximum(frac, 0.05) + 0.5 * (1 - frac)
+    cs = np.concatenate([np.zeros((y.shape[0], 1)), np.cumsum(y, axis=1)], axis=1)
+    t = np.arange(start, n_days)
+    lo, hi = np.maximum(t - 3, 0), np.minimum(t + 4, n_days)
+    level = (cs[:, hi] - cs[:, lo]) / (hi - lo)
+    miss = level * (1.0 - frac)
     draws = rep[None, :, start:] + rng.poisson(rng.gamma(20.0, miss[None] / 20.0,
                                                           size=(m, *miss.shape)))
     base = rep.copy()
