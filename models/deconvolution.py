@@ -230,14 +230,14 @@ def _initial_guess(y: np.ndarray, f: np.ndarray, n_before: int) -> np.ndarray:
 
 
 def allocation_operator(deconv: Deconvolution, pmf: Any, obs_days: np.ndarray,
-                        inf_days: np.ndarray) -> np.ndarray:
+                        inf_days: np.ndarray, q_floor: float = 0.02) -> np.ndarray:
     """Linear response of the infections to changes of some days' counts: (..., t_obs, n_inf).
 
     One EM step from the fitted solution allocates an extra count on day t to infection days s
     in proportion to ``lambda_s f_{t-s} / mu_t``, divided by ``q_s`` like the EM update:
     ``d lambda_s = lambda_s / q_s * sum_t f_{t-s} d y_t / mu_t``.  ``obs_days`` are count days
-    (0..T-1), ``inf_days`` infection days (-n_before..T-1).  Applied to a nowcast draw's change
-    of the counts this gives the draw's infections without a new deconvolution.
+    (0..T-1), ``inf_days`` infection days (-n_before..T-1); days with ``q_s < q_floor`` are not
+    updated (as in :func:`richardson_lucy`).
     """
     f = delay_pmf(pmf)
     nb = deconv.n_before
@@ -247,9 +247,10 @@ def allocation_operator(deconv: Deconvolution, pmf: Any, obs_days: np.ndarray,
     q = deconv.observability[inf_days + nb]
     lam = deconv.infections[..., inf_days + nb]
     mu = deconv.fitted[..., obs_days]
+    upd = (q >= q_floor) & (q > 0.0)
     with np.errstate(divide="ignore", invalid="ignore"):
         inv_mu = np.where(mu > 0.0, 1.0 / mu, 0.0)
-        scale = np.where(q > 0.0, lam / np.where(q > 0.0, q, 1.0), 0.0)
+        scale = np.where(upd, lam / np.where(upd, q, 1.0), 0.0)
     return inv_mu[..., :, None] * g * scale[..., None, :]
 
 

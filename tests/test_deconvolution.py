@@ -9,10 +9,12 @@ from scipy import optimize, stats
 from tallywave.models.deconvolution import (
     Deconvolution,
     _Convolver,
+    _smooth121,
     allocation_operator,
     delay_pmf,
     delay_stack,
     observability,
+    response_operator,
     richardson_lucy,
     rounded_gamma_pmf,
 )
@@ -150,10 +152,10 @@ def test_allocation_operator_is_the_derivative_of_one_em_step() -> None:
     conv = _Convolver(f, n_days, nb)
     q = dec.observability
 
-    def em_step(yy: np.ndarray) -> np.ndarray:
+    def em_step(yy: np.ndarray) -> np.ndarray:  # days with q < 0.02 are not updated
         with np.errstate(divide="ignore", invalid="ignore"):
             corr = conv.back(np.where(dec.fitted > 0, yy / dec.fitted, 0.0)) / q
-        return dec.infections * corr
+        return np.where(q >= 0.02, dec.infections * corr, dec.infections)
 
     obs_days = np.arange(40, 50)
     inf_days = np.arange(25, 50)
@@ -166,6 +168,33 @@ def test_allocation_operator_is_the_derivative_of_one_em_step() -> None:
         num = (em_step(bump) - em_step(y))[:, inf_days + nb] / h
         np.testing.assert_allclose(op[:, k, :], num, rtol=1e-5, atol=1e-7)
     assert isinstance(dec, Deconvolution)
+
+
+def test_response_operator_is_the_derivative_of_the_deconvolution() -> None:
+    # the derivative of n EMS steps started at the (converged) solution, by finite differences
+    # of richardson_lucy itself; one step is the one-step allocation, smoothed
+    f = rounded_gamma_pmf(5.0, 2.5)
+    rng = np.random.default_rng(6)
+    n_days = 60
+    y = rng.poisson(200.0 * np.exp(0.02 * np.arange(n_days)), size=(2, n_days)).astype(float)
+    dec = richardson_lucy(y, f, n_iter=400)
+    nb = dec.n_before
+    inf_days = np.arange(-nb, n_days)
+    obs_days = np.arange(45, 60)
+    one = response_operator(dec, f, y, obs_days, inf_days, 1)
+    alloc = allocation_operator(dec, f, obs_days, inf_days)
+    np.testing.assert_allclose(one, _smooth121(alloc), rtol=1e-9, atol=1e-12)
+    op = response_operator(dec, f, y, obs_days, inf_days, 10)
+    h = 1e-4
+    for k, t in enumerate(obs_days):
+        bump = y.copy()
+        bump[:, t] += h
+        moved = richardson_lucy(bump, f, n_iter=10, start=dec.infections).infections
+        again = richardson_lucy(y, f, n_iter=10, start=dec.infections).infections
+        num = (moved - again) / h
+        np.testing.assert_allclose(op[:, k], num, rtol=2e-3, atol=2e-4 * np.abs(num).max())
+    with pytest.raises(ValueError, match="consecutive"):
+        response_operator(dec, f, y, obs_days, np.arange(0, 50), 3)
 
 
 def test_input_validation() -> None:

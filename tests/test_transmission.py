@@ -209,17 +209,14 @@ def test_mixture_over_draws_matches_refits_and_is_not_under_dispersed() -> None:
         variances.append(one.sd_**2)
     m_ref = np.mean(means, axis=0)
     v_ref = np.mean(variances, axis=0) + np.var(means, axis=0)
-    cells = np.s_[:, 70:-8]
+    cells = np.s_[:, 70:]
     ok = np.isfinite(m_ref[cells]) & np.isfinite(mix.mean_[cells])
     rel_m = np.abs(mix.mean_[cells] / m_ref[cells] - 1)[ok]
     rel_sd = np.abs(mix.sd_[cells] / np.sqrt(v_ref[cells]) - 1)[ok]
-    last = mix.sd_[:, -1] / np.sqrt(v_ref[:, -1])
-    report("one linearised EM step per draw vs refits: max rel. error of mean / sd up to day "
-           "T-9; sd ratio on the last day", f"{rel_m.max():.4f} / {rel_sd.max():.3f}; "
-           f"{np.nanmin(last):.2f}-{np.nanmax(last):.2f}")
-    assert rel_m.max() < 0.02 and rel_sd.max() < 0.15
-    cells = np.s_[:, 70:-2]
-    ok = np.isfinite(m_ref[cells]) & np.isfinite(mix.mean_[cells])
+    report("linearised deconvolution per draw vs one refit per draw: max rel. error of the "
+           "mixture mean / sd (every day, the last included)",
+           f"{rel_m.max():.4f} / {rel_sd.max():.3f}")
+    assert rel_m.max() < 0.03 and rel_sd.max() < 0.05
     # never narrower than its components on average (law of total variance)
     assert np.all(mix.sd_[cells][ok] >= np.sqrt(np.mean(variances, axis=0)[cells][ok]) * 0.99)
     # no draws: a single gamma; draws that equal the counts change nothing
