@@ -385,7 +385,7 @@ def _panel_counts(ax: Any, cleaned: pd.DataFrame | None, nowcast: pd.DataFrame |
 
 
 def _panel_rt(ax: Any, rt: pd.DataFrame | None) -> None:
-    title = "(b) R_t with 50% / 90% intervals"
+    title = "(b) R_t by date of infection, 50% / 90% intervals"
     b = _bands(rt, "ref_date")
     if b is None or rt is None:
         _no_data(ax, title)

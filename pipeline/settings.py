@@ -56,15 +56,32 @@ SPEC: dict[str, Setting] = {
     "use_weekday_adjusted": Setting(False, "R_t from the weekday-adjusted series"),
     # ---- transmission ----
     "rt_window_days": Setting(7, "renewal estimator smoothing window (Cori et al. 2013)"),
+    "rt_window_align": Setting("centre", "R_t of a day from the window centred on it (`centre`; "
+                               "the last days use what is observed) or ending on it",
+                               ("centre", "trailing")),
+    "infection_delay": Setting(
+        {"mean": 5.0, "sd": 2.5,
+         "by_signal": {"cases": {"mean": 3.1, "sd": 1.3}, "admissions": {"mean": 7.0, "sd": 2.8},
+                       "deaths": {"mean": 18.0, "sd": 6.6}}},
+        "days from infection to the signal's reference date (incubation + onset-to-event "
+        "delay; reporting delays are the nowcast's): gamma `{mean, sd}`, `{pmf = [...]}` or "
+        "`{candidates = [[mean, sd], ...]}` to mix; `by_signal` entries override it per signal "
+        "name (defaults: the demo simulator's delays)"),
+    "rt_deconvolution_iterations": Setting(10, "EMS steps of the back-calculation of "
+                                           "infections"),
+    "rt_draws": Setting(50, "nowcast joint draws mixed into R_t (the first ones; at most "
+                        "`nowcast_joint_draws`)"),
     "rt_prior_mean": Setting(5.0, "mean of the gamma prior on R (Cori et al. 2013 use 5)"),
     "rt_prior_sd": Setting(5.0, "sd of the gamma prior on R (Cori et al. 2013 use 5)"),
-    "rt_min_infections": Setting(12.0, "no R_t where the window's expected infections are "
-                                 "fewer"),
+    "rt_min_infections": Setting(12.0, "no R_t where the window's expected infections already "
+                                 "counted are fewer"),
     "generation_interval": Setting({"mean": 5.2, "sd": 2.4},
                                    "days; discretised gamma `{mean, sd}`, or `{pmf = [...]}`, "
                                    "or `{candidates = [[mean, sd], ...]}` to mix"),
     "rt_history_days": Setting(120, "days of R_t published per run"),
-    "rt_nowcast_days": Setting(14, "last days whose R_t is flagged nowcast-dependent"),
+    "rt_nowcast_days": Setting(14, "R_t of a day is flagged nowcast-dependent when over 10% of "
+                               "its window's infections are counted in the last this many days "
+                               "or later"),
     # ---- forecasting ----
     "fit_window_weeks": Setting(8, "weeks of data each compartmental refit uses"),
     "horizon_days": Setting(28, "forecast horizon"),
@@ -116,8 +133,48 @@ class Settings:
         return json.dumps({"defaults": self.base, "signal": self.per_signal}, sort_keys=True)
 
 
+def _check_delay(value: Any, where: str, nested: bool = True) -> dict:
+    """An infection_delay value: {mean, sd}, {pmf}, {candidates}, optionally by_signal entries."""
+    if not isinstance(value, dict):
+        raise UserError(f"{where}: infection_delay must be a table, got {value!r}")
+    unknown = set(value) - {"mean", "sd", "pmf", "candidates", "by_signal"}
+    if unknown:
+        raise UserError(f"{where}: infection_delay has unknown key {min(unknown)!r}")
+    if {"mean", "sd"} <= set(value):
+        pairs = [[value["mean"], value["sd"]]]
+    elif "candidates" in value:
+        pairs = value["candidates"]
+        if not isinstance(pairs, list) or not pairs or not all(
+                isinstance(c, list) and len(c) == 2 for c in pairs):
+            raise UserError(f"{where}: infection_delay candidates must be [[mean, sd], ...]")
+    elif "pmf" in value:
+        pmf = value["pmf"]
+        if not isinstance(pmf, list) or not pmf or not all(
+                isinstance(x, (int, float)) and not isinstance(x, bool) and x >= 0 for x in pmf) \
+                or sum(pmf) <= 0:
+            raise UserError(f"{where}: infection_delay pmf must be a list of probabilities >= 0 "
+                            "with a positive sum")
+        pairs = []
+    else:
+        raise UserError(f"{where}: infection_delay needs {{mean, sd}}, {{pmf = [..]}} or "
+                        "{candidates = [[mean, sd], ...]}")
+    for m, sd in pairs:
+        if any(isinstance(x, bool) or not isinstance(x, (int, float)) or not x > 0
+               for x in (m, sd)):
+            raise UserError(f"{where}: infection_delay mean and sd must be positive numbers")
+    by = value.get("by_signal")
+    if by is not None:
+        if not nested or not isinstance(by, dict):
+            raise UserError(f"{where}: infection_delay by_signal must be a table of signals")
+        for sig, sub in by.items():
+            _check_delay(sub, f"{where}.by_signal.{sig}", nested=False)
+    return value
+
+
 def _check_value(key: str, value: Any, where: str) -> Any:
     default = DEFAULTS[key]
+    if key == "infection_delay":
+        return _check_delay(value, where)
     if key == "generation_interval":
         if not isinstance(value, dict) or not (
             {"mean", "sd"} <= set(value) or "pmf" in value or "candidates" in value
@@ -200,12 +257,19 @@ def _cell(value: Any) -> str:
     if isinstance(value, str):
         return f'`"{value}"`'
     if isinstance(value, dict):
-        return "`{" + ", ".join(f"{k} = {v}" for k, v in value.items()) + "}`"
+        return "`" + _toml_inline(value) + "`"
     if isinstance(value, list):
         if all(isinstance(v, float) for v in value) and len(value) > 4:
             return f"{value[0]:g} … {value[-1]:g} ({len(value)} levels)"
         return ", ".join(str(v) for v in value)
     return f"{value:g}" if isinstance(value, float) else str(value)
+
+
+def _toml_inline(value: Any) -> str:
+    """A value as an inline TOML fragment (tables nested)."""
+    if isinstance(value, dict):
+        return "{" + ", ".join(f"{k} = {_toml_inline(v)}" for k, v in value.items()) + "}"
+    return str(value)
 
 
 def markdown_table() -> str:

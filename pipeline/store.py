@@ -125,8 +125,15 @@ _V2 = [
         WHERE r.signal NOT IN (SELECT signal FROM core.signals) GROUP BY r.signal""",
 ]
 
+#: Version 3: R_t and growth say which date they refer to (``'infection'``: R_t is published by
+#: date of infection, back-calculated through the signal's infection-to-reference-date delay).
+_V3 = [
+    "ALTER TABLE out.rt ADD COLUMN IF NOT EXISTS date_basis VARCHAR",
+    "ALTER TABLE out.growth ADD COLUMN IF NOT EXISTS date_basis VARCHAR",
+]
+
 #: Forward migrations: (version, statements).  Append new steps; never edit a shipped one.
-MIGRATIONS: list[tuple[int, list[str]]] = [(1, _V1), (2, _V2)]
+MIGRATIONS: list[tuple[int, list[str]]] = [(1, _V1), (2, _V2), (3, _V3)]
 SCHEMA_VERSION = MIGRATIONS[-1][0]
 
 

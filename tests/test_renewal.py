@@ -8,10 +8,13 @@ from scipy import integrate, stats
 
 from tallywave.models.renewal import (
     CoriEstimator,
+    _gamma_mixture_ppf,
     discretise_gamma_interval,
     doubling_time,
+    gamma_ppf_fast,
     growth_rate_from_r,
     log_linear_growth,
+    matched_gamma,
     reproduction_number_from_growth,
     resolve_interval,
     total_infectiousness,
@@ -309,6 +312,50 @@ def test_mixture_over_interval_candidates() -> None:
     # all weight on the first candidate reproduces the single-interval fit
     one = CoriEstimator().fit_draws(inc[None], cands, interval_weights=[1.0, 0.0])
     np.testing.assert_allclose(one.quantiles(Q90), fits[0].quantiles(Q90), rtol=1e-8)
+
+
+def test_fast_gamma_quantiles_match_scipy() -> None:
+    rng = np.random.default_rng(21)
+    shape = np.exp(rng.uniform(np.log(0.2), np.log(1e6), size=(300, 40)))
+    scale = rng.uniform(0.01, 3.0, size=shape.shape)
+    shape[0, :3] = [np.nan, 1.0, 1e9]
+    levels = [0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975]
+    got = gamma_ppf_fast(shape, scale, levels)
+    ref = stats.gamma.ppf(np.array(levels), shape[..., None], scale=scale[..., None])  # scipy
+    assert got.shape == (300, 40, 9) and np.all(np.isnan(got[0, 0]))
+    ok = np.isfinite(ref)
+    np.testing.assert_allclose(got[ok], ref[ok], rtol=1e-6)
+    assert np.all(np.diff(got[1:], axis=-1) > 0)
+
+
+def test_matched_gamma_moments_and_mixture_accuracy() -> None:
+    mean, var = np.array([1.2, 0.8, 2.0]), np.array([0.01, 0.04, 0.5])
+    shape, scale = matched_gamma(mean, var)
+    np.testing.assert_allclose(shape * scale, mean, rtol=1e-12)
+    np.testing.assert_allclose(shape * scale**2, var, rtol=1e-12)
+    assert np.all(np.isnan(matched_gamma(np.array([1.0]), np.array([0.0]))[0]))
+    # accuracy kept against the exact mixture inversion (safeguarded Newton, 1e-10): posteriors
+    # of 30 to 3,000 counts whose means spread log-normally by sd 0.02-0.3 (nowcast-like), the
+    # spread resolved by 400 evenly spaced components so that the mixture is smooth
+    rng = np.random.default_rng(3)
+    n_comp, n_cells = 400, 60
+    a = np.broadcast_to(rng.uniform(30.0, 3000.0, size=(1, n_cells)), (n_comp, n_cells))
+    z = stats.norm.ppf((np.arange(n_comp) + 0.5) / n_comp)[:, None]
+    sig = rng.uniform(0.02, 0.3, n_cells)
+    th = np.exp(z * sig - sig**2 / 2) / a
+    w = np.full(n_comp, 1.0 / n_comp)
+    q = np.array([0.025, 0.05, 0.25, 0.5, 0.75, 0.95, 0.975])
+    exact = _gamma_mixture_ppf(a, th, w, q)
+    mu = (w[:, None] * a * th).sum(axis=0)
+    v = (w[:, None] * (a * th**2 + (a * th) ** 2)).sum(axis=0) - mu**2
+    fast = gamma_ppf_fast(*matched_gamma(mu, v), q)
+    # in probability: the exact mixture CDF at the fast quantile (reference: scipy.stats.gamma)
+    cdf = (w[:, None, None] * stats.gamma.cdf(fast[None], a[..., None], scale=th[..., None])
+           ).sum(axis=0)
+    err = np.abs(cdf - q)
+    assert err.max() < 0.02, err.max()  # measured 0.017 (worst at sd 0.3, 2.5% level)
+    # in value: measured 6.7% at the 2.5% level where the draws spread the mean by 30%
+    assert np.abs(fast / exact - 1.0).max() < 0.08
 
 
 # ---------------------------------------------------------------------------------------------
