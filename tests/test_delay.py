@@ -166,7 +166,7 @@ def sim() -> dict:
     level = rng.uniform(30, 300, S_SIM)[:, None] * np.exp(0.02 * np.arange(T_SIM))[None, :]
     full, obs = simulate_triangle(level, pmf[None], PHI_SIM, rng)
     nc = DelayNowcaster(model=DelayGLM(family="negbin")).fit(obs)
-    q = nc.quantiles(Q_LEVELS, n_draws=500, rng=rng)
+    q = nc.quantiles(Q_LEVELS, n_draws=500)
     return {"pmf": pmf, "full": full, "obs": obs, "nc": nc, "q": q, "final": full.sum(axis=2)}
 
 
@@ -205,7 +205,7 @@ def test_simulated_truth_nowcast_calibration_and_accuracy(sim: dict) -> None:
 
 def test_sample_shape_and_mean(sim: dict) -> None:
     nc = sim["nc"]
-    draws = nc.sample(400, np.random.default_rng(5))
+    draws = nc.sample(400)
     assert draws.shape == (400, S_SIM, T_SIM)
     assert np.all(draws >= nc.reported_[None] - 1e-9)
     last = slice(T_SIM - 14, T_SIM)
@@ -215,7 +215,7 @@ def test_sample_shape_and_mean(sim: dict) -> None:
 
 def test_chain_ladder_drives_the_nowcaster(sim: dict) -> None:
     nc = DelayNowcaster(model=ChainLadder()).fit(sim["obs"])
-    q = nc.quantiles([0.05, 0.5, 0.95], n_draws=300, rng=np.random.default_rng(2))
+    q = nc.quantiles([0.05, 0.5, 0.95], n_draws=300)
     assert 0.80 <= _coverage(q, sim["final"], 0, 2, slice(T_SIM - 14, T_SIM)) <= 0.97
 
 
@@ -234,12 +234,12 @@ def test_weekday_effect_recovered_and_useful() -> None:
     # simulated truth: report-weekday multipliers (mean 1) and the base delay pmf
     np.testing.assert_allclose(with_wk.model_.weekday_effect_.mean(axis=0), g_true, atol=0.02)
     assert total_variation(with_wk.model_.base_pmf_, pmf).mean() < 0.035
-    q = with_wk.quantiles([0.05, 0.5, 0.95], n_draws=400, rng=rng)
+    q = with_wk.quantiles([0.05, 0.5, 0.95], n_draws=400)
     assert 0.80 <= _coverage(q, final, 0, 2, last) <= 0.97
     mae_wk = np.abs(q[:, last, 1] - final[:, last]).mean()
     assert mae_wk <= 0.5 * np.abs(with_wk.reported_[:, last] - final[:, last]).mean()
     without = DelayNowcaster(model=DelayGLM(weekday_effect=False)).fit(obs)
-    q0 = without.quantiles([0.5], n_draws=400, rng=rng)
+    q0 = without.quantiles([0.5], n_draws=400)
     assert mae_wk < np.abs(q0[:, last, 0] - final[:, last]).mean()
 
 
@@ -290,7 +290,7 @@ def test_poisson_nowcast_matches_gamma_poisson_closed_form() -> None:
     rate = frac + nc.prior_shape / nc.prior_level_[0]
     size, p = count + nc.prior_shape, rate / (rate + miss)
     assert size * (1 - p) / p < 50  # exact gamma-Poisson branch of the sampler
-    y = nc.sample(20000, rng)[:, 0, t] - nc.reported_[0, t]
+    y = nc.sample(20000)[:, 0, t] - nc.reported_[0, t]
     grid = np.arange(0, int(np.quantile(y, 0.99)) + 1)
     ecdf = (y[:, None] <= grid[None, :]).mean(axis=0)
     assert np.abs(ecdf - stats.nbinom.cdf(grid, size, p)).max() < 0.015
@@ -307,15 +307,15 @@ def test_pmf_uncertainty_matches_spread_across_replicates() -> None:
     _, obs = simulate_triangle(np.full((300, 60), 100.0), _gamma_pmf(6.0), 0.1, rng)
     nc = DelayNowcaster(model=DelayGLM(pool_below=0, pool_fully_below=0)).fit(obs)
     empirical = np.log(np.cumsum(nc.model_.base_pmf_, axis=1)).var(axis=0)
-    draws = nc.draw_delay_pmf(1000, rng)
+    draws = nc.draw_delay_pmf(1000)
     predicted = np.log(np.cumsum(draws, axis=2)).var(axis=0).mean(axis=0)
     ratio = empirical[:10] / predicted[:10]
     assert np.all((ratio > 0.75) & (ratio < 1.33))
     # switching parameter uncertainty off narrows the intervals of the latest rows
     off = DelayNowcaster(model=DelayGLM(pool_below=0, pool_fully_below=0),
                          parameter_uncertainty=False).fit(obs)
-    width_on = np.diff(nc.quantiles([0.05, 0.95], 400, np.random.default_rng(1)), axis=2)
-    width_off = np.diff(off.quantiles([0.05, 0.95], 400, np.random.default_rng(1)), axis=2)
+    width_on = np.diff(nc.quantiles([0.05, 0.95], 400), axis=2)
+    width_off = np.diff(off.quantiles([0.05, 0.95], 400), axis=2)
     assert width_on[:, -5:].mean() > width_off[:, -5:].mean()
 
 
@@ -352,8 +352,7 @@ def test_holes_are_predicted_unless_reported_totals_are_given() -> None:
     np.testing.assert_allclose(m2.reported_, current)
     np.testing.assert_allclose(
         m2.expected_total_, current + (m2.expected_ * future[None]).sum(axis=2))
-    q = DelayNowcaster().fit(obs, reported=current).quantiles([0.1, 0.9], 200,
-                                                               np.random.default_rng(0))
+    q = DelayNowcaster().fit(obs, reported=current).quantiles([0.1, 0.9], 200)
     assert np.all(q >= current[:, :, None])
 
 
@@ -365,7 +364,7 @@ def test_rows_without_observed_mass_get_prior_based_nowcast() -> None:
     _, obs = simulate_triangle(np.full((3, 40), 50.0), pmf, 0.0, rng)
     nc = DelayNowcaster().fit(obs)
     assert np.isnan(nc.model_.expected_total_[:, -1]).all()
-    q = nc.quantiles([0.05, 0.5, 0.95], 400, rng)
+    q = nc.quantiles([0.05, 0.5, 0.95], 400)
     assert np.isfinite(q).all()
     # prior centred on the recent level (about 50 per day): the 90% interval contains it
     assert np.all((q[:, -1, 0] < 50) & (q[:, -1, 2] > 50))
