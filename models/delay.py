@@ -457,6 +457,18 @@ class _WorkSet:
         return done
 
 
+def _store(which: np.ndarray, idx: np.ndarray, ws: _WorkSet, p_out: np.ndarray,
+           g_out: np.ndarray | None, eta_out: np.ndarray | None) -> None:
+    """Copy the working values of the series ``which`` (positions in the working set) out."""
+    if not which.any():
+        return
+    p_out[idx[which]] = ws.p[which]
+    if g_out is not None and ws.g is not None:
+        g_out[idx[which]] = ws.g[which]
+    if eta_out is not None and ws.eta is not None:
+        eta_out[idx[which]] = ws.eta[which]
+
+
 def _poisson_ml(
     counts: np.ndarray,
     exposure: np.ndarray,
@@ -494,20 +506,21 @@ def _poisson_ml(
         done = np.zeros(idx.size, dtype=bool)
         for _ in range(min(10, max_iter - sweeps)):
             sweeps += 1
-            done = ws.sweep(tol)
+            now = ws.sweep(tol) & ~done
+            # a series keeps the values of the sweep where it converged, whatever its batch
+            # neighbours still do (so results never depend on which series share a batch)
+            _store(now, idx, ws, p_out, g_out, eta_out)
+            done |= now
             if done.all():
                 break
-        p_out[idx] = ws.p
-        if g_out is not None:
-            g_out[idx] = ws.g
-        if eta_out is not None:
-            eta_out[idx] = ws.eta
+        _store(~done, idx, ws, p_out, g_out, eta_out)
         idx = idx[~done]
     return p_out, g_out, eta_out, sweeps
 
 
 def _pearson_nb_dispersion(
-    counts: np.ndarray, mu: np.ndarray, observed: np.ndarray, n_params: int, floor: float
+    counts: np.ndarray, mu: np.ndarray, observed: np.ndarray, n_params: int | np.ndarray,
+    floor: float
 ) -> np.ndarray:
     """NB2 dispersion phi (Var = mu + phi mu^2) solving the Pearson moment equation per series.
 
@@ -547,7 +560,7 @@ class _TriangleModel:
         tri: _Triangle,
         pmf: np.ndarray,
         weights: np.ndarray | None,
-        n_params: int,
+        n_params: int | np.ndarray,
         dispersion_floor: float,
         estimate_dispersion: bool,
     ) -> None:
@@ -827,7 +840,9 @@ class DelayGLM(_TriangleModel):
         t = _prepare(tri, self.max_delay, reported, r)
         s, n_ref, k = t.shape
         drift = np.broadcast_to(np.asarray(self.drift, dtype=bool), (s,)).copy()
-        design = self._design(n_ref, k, bool(drift.any()))
+        # drift blocks are part of the design whenever drift is asked for per series (an
+        # array) or for all: the same design for every batch of a signal
+        design = self._design(n_ref, k, np.ndim(self.drift) > 0 or bool(self.drift))
         n_events = t.counts.sum(axis=(1, 2))
         if pooled is False:
             weight = np.ones(s)
@@ -865,11 +880,11 @@ class DelayGLM(_TriangleModel):
         self.tilt_ = eta
         weights = self._row_weights(g, eta, design)
         self.delay_pmf_ = self._today_pmf(pmf, weights)
-        n_params = n_ref + k - 1
+        n_params = np.full(s, n_ref + k - 1)
         if g is not None:
             n_params += int((design.class_onehot().sum(axis=0) > 0).sum()) - 1
         if eta is not None:
-            n_params += int(drift.mean() * (design.n_seg - 1))
+            n_params += drift * (design.n_seg - 1)
         self._finalise(t, pmf, weights, n_params, self.dispersion_floor,
                        self.family == "negbin")
         return self
@@ -1116,7 +1131,7 @@ def _log_pmf_covariance(model: Any, dispersion: np.ndarray) -> np.ndarray:
     var = mu * (1.0 + phi * mu)
     drift = np.asarray(getattr(model, "drift_", np.zeros(s, dtype=bool)), dtype=bool)
     use_cls = getattr(model, "class_effect_", None) is not None and design.cls is not None
-    use_seg = design.seg is not None and bool(drift.any())
+    use_seg = design.seg is not None
     oh3 = None
     if use_cls:
         assert design.cls is not None

@@ -304,7 +304,8 @@ def _fit_block(args: tuple[Triangle, Triangle | None, SignalDelay, dict[str, Any
             drift = (w * gain + (1.0 - w) * sig.agg_gain) > float(cfg["nowcast_drift_margin"])
         else:
             drift = np.full(n, mode == "on")
-        model = DelayGLM(**{**sig.template.get_params(), "drift": drift})
+        model = DelayGLM(**{**sig.template.get_params(),
+                            "drift": drift if mode != "off" else False})
     nc = DelayNowcaster(model=model, family=cfg["nowcast_family"], window=D + 1,
                         random_state=series_seeds(int(cfg["seed"]), tri.signal, tri.regions))
     nc.fit(tri.cells, reported=tri.latest, pooled=sig.pooled)
