@@ -45,7 +45,7 @@ def trials() -> dict:
 
 @pytest.mark.parametrize("name", list(SCENARIOS))
 def test_nowcast_coverage_in_every_scenario(trials, name) -> None:
-    trial, dates, cells = trials[name]
+    _, dates, cells = trials[name]
     assert any(d.weekday() == 6 for d in dates)  # a Sunday run is among them
     everything = summarise(cells)
     cases = summarise(cells[cells["signal"] == "cases"])
