@@ -437,7 +437,7 @@ class _WorkSet:
         ll = (self.row_tot * np.log(np.where(a > 0, a, 1.0))).sum(axis=1) - self.row_tot.sum(1)
         lf = np.log(np.maximum(full.reshape(-1)[self.pos], 1e-300)) * self.xpos
         ll += np.bincount(self.pos_series, weights=lf, minlength=self.x.shape[0])
-        if self.eta is not None:
+        if self.eta is not None and self.rw is not None:
             ll -= 0.5 * np.einsum("ni,ij,nj->n", self.eta, self.rw, self.eta)
         return ll
 
@@ -554,6 +554,8 @@ class _TriangleModel:
     """Shared fitted state: expected cells, completed totals and reserves from pmf + weights."""
 
     tail_shape_: tuple[float, float] | None = None
+    delay_pmf_: np.ndarray
+    base_pmf_: np.ndarray
 
     def _finalise(
         self,
@@ -597,7 +599,7 @@ class _TriangleModel:
     def mean_delay(self, pmf: np.ndarray | None = None) -> np.ndarray:
         """Mean delay (days) of delay pmfs (default ``delay_pmf_``); a "≥ D" tail bin counts as
         D + the tail's mean."""
-        p = np.asarray(self.delay_pmf_ if pmf is None else pmf, dtype=float)  # type: ignore
+        p = np.asarray(self.delay_pmf_ if pmf is None else pmf, dtype=float)
         d = np.arange(p.shape[-1], dtype=float)
         if self.tail_shape_ is not None:
             d[-1] += float(self.tail_shape_[1])

@@ -493,15 +493,15 @@ def move_to_open_days(tri: np.ndarray, closed: np.ndarray) -> np.ndarray:
     closed = np.asarray(closed, dtype=bool)
     next_open = np.full(closed.size, closed.size, dtype=np.int64)
     nxt = closed.size
-    for u in range(closed.size - 1, -1, -1):  # next open day at or after u
-        if not closed[u]:
-            nxt = u
-        next_open[u] = nxt
+    for day in range(closed.size - 1, -1, -1):  # next open day at or after each day
+        if not closed[day]:
+            nxt = day
+        next_open[day] = nxt
     shift = next_open - np.arange(closed.size)
-    u = np.arange(n_t)[:, None] + np.arange(k)[None, :]
-    if u.max() >= closed.size:
+    due = np.arange(n_t)[:, None] + np.arange(k)[None, :]
+    if due.max() >= closed.size:
         raise ValueError("closed must cover every report day t + d")
-    s = shift[u]
+    s = shift[due]
     out = np.zeros(tri.shape[:2] + (k + int(s.max()),), dtype=tri.dtype)
     for step in np.unique(s):
         tt, dd = np.nonzero(s == step)

@@ -251,7 +251,7 @@ def _write_truth(truth: Path, sc: OutbreakScenario, days: np.ndarray, start_date
         "detail": pa.array([a["detail"] for a in art], type=pa.string()),
     }), truth / "artefacts.parquet")
 
-    scenario = {
+    info: dict[str, object] = {
         "description": "Invented province 'Varethmoor' and an invented respiratory outbreak; "
                        "every name and number is fictional.",
         "start": start_date.isoformat(),
@@ -272,7 +272,7 @@ def _write_truth(truth: Path, sc: OutbreakScenario, days: np.ndarray, start_date
         "artefacts": [{**a, "region": sc.names[a["region"]], "ref_date": str(days[a["day"]])}
                       for a in art],
     }
-    (truth / "scenario.json").write_text(json.dumps(scenario, indent=2, sort_keys=True) + "\n",
+    (truth / "scenario.json").write_text(json.dumps(info, indent=2, sort_keys=True) + "\n",
                                          encoding="utf-8")
     return {"truth/infections": n_regions * n_days,
             "truth/final_counts": n_regions * n_days * len(signals),
