@@ -128,3 +128,27 @@ def test_batch_size_never_changes_the_nowcast() -> None:
             assert len(frame) > 0
             pd.testing.assert_frame_equal(frame, other[key], check_exact=False, rtol=1e-9,
                                           atol=1e-9)
+
+
+@pytest.mark.parametrize("changes", [
+    {"nowcast_method": "chain_ladder"},
+    {"nowcast_drift": "off", "nowcast_tail": "none", "nowcast_weekday_effect": False},
+    {"nowcast_drift": "on", "nowcast_tail": "geometric", "nowcast_family": "poisson",
+     "nowcast_holidays": ["2026-09-18"]},
+])
+def test_other_settings_publish_complete_nowcasts(changes) -> None:
+    trial = build_trial("weekend_reporting", 5)
+    as_of = as_of_days(trial, 1)[0]
+    s = Settings()
+    s.base.update(changes)
+    s.base["nowcast_draws"] = 100
+    got = nowcast(trial.con, as_of, s, run_id="v")
+    assert "skipped" not in got
+    n = trial.con.execute("SELECT count(*), count(DISTINCT region || signal), "
+                          "bool_and(value >= reported) FROM out.nowcast WHERE run_id = 'v'"
+                          ).fetchall()[0]
+    assert n[0] == 5 * 3 * 29 * 9 and n[1] == 15 and n[2]
+    models = trial.con.execute("SELECT DISTINCT delay_model FROM out.delay_model "
+                               "WHERE run_id = 'v'").df()["delay_model"].tolist()
+    want = {"nowcast_drift": "on"}.items() <= changes.items()
+    assert models == (["drifting"] if want else ["stationary"])
