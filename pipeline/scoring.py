@@ -7,8 +7,8 @@ Truth for (region, signal, target_date), as known on the scoring date: the lates
 kept up to date with revisions that arrived after that run (``truth_run_id`` names the run).  A
 target counts as settled once the scoring date is at least the signal's settle horizon after it:
 with ``settle_rule = "delay"`` the longer of ``settle_days`` and the 99th percentile of the
-signal's delay distribution published by that run (``out.delay_signal``), else ``settle_days``
-(``out.scores.settle_days`` records it).  Scores are a pure function of (published forecasts,
+signal's delay distribution published by that run (``out.delay_signal``), at most
+``settle_max_days``; else ``settle_days`` (``out.scores.settle_days`` records it).  Scores are a pure function of (published forecasts,
 data known on the scoring date): each call recomputes them all in one transaction, so a revised
 truth is re-scored and ``truth_as_of`` says which data scored each row.  Mathematics:
 :mod:`tallywave.models.scores`; its SQL: :mod:`tallywave.pipeline.scores_sql`.
@@ -57,7 +57,8 @@ def settle_horizons(con: duckdb.DuckDBPyConnection, run_id: str | None,
         floor = int(settings.get("settle_days", signal))
         if settings.get("settle_rule", signal) == "delay" and signal in q99 \
                 and math.isfinite(q99[signal]):
-            out[signal] = max(floor, math.ceil(q99[signal]))
+            cap = max(floor, int(settings.get("settle_max_days", signal)))
+            out[signal] = min(max(floor, math.ceil(q99[signal])), cap)
         else:
             out[signal] = floor
     return out

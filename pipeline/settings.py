@@ -106,6 +106,8 @@ SPEC: dict[str, Setting] = {
     "settle_rule": Setting("delay", "`delay`: per signal, the longer of `settle_days` and the "
                            "99th percentile of its published delay distribution; `fixed`: "
                            "`settle_days`", ("delay", "fixed")),
+    "settle_max_days": Setting(90, "`settle_rule = \"delay\"` never waits longer than this (a "
+                               "long, uncertain delay tail would otherwise keep truth unsettled)"),
     # ---- run ----
     "seed": Setting(20260302, "random seed: runs are reproducible"),
     "batch_regions": Setting(250, "regions per parallel task (never changes the results)"),
