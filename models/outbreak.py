@@ -48,6 +48,7 @@ from scipy import special
 from tallywave.models.distributions import gamma_delay_pmf
 
 __all__ = [
+    "SCENARIOS",
     "EpidemicPath",
     "OutbreakScenario",
     "ReportingProcess",
@@ -63,6 +64,8 @@ __all__ = [
     "inject_backlog_dump",
     "inject_duplicate_correction",
     "invent_district_names",
+    "move_to_open_days",
+    "reporting_scenario",
     "simulate_outbreak",
     "split_by_delay",
     "spread_by_lag",
@@ -346,6 +349,11 @@ class ReportingProcess:
         death_delay: tuple[float, float, int] = (8.5, 5.0, 28),
         onset_to_admission: tuple[float, float, int] = (4.5, 2.5, 14),
         removal_to_death: tuple[float, float, int] = (10.5, 6.0, 35),
+        delay_drift: tuple[int, int, float] | None = None,
+        tail_share: float = 0.0,
+        tail_delay: tuple[float, float, int] = (50.0, 20.0, 150),
+        closed_weekdays: tuple[int, ...] = (),
+        holidays: tuple[int, ...] = (),
     ) -> None:
         self.case_probability = case_probability
         self.admission_probability = admission_probability
@@ -356,14 +364,68 @@ class ReportingProcess:
         self.death_delay = death_delay
         self.onset_to_admission = onset_to_admission
         self.removal_to_death = removal_to_death
+        self.delay_drift = delay_drift
+        self.tail_share = tail_share
+        self.tail_delay = tail_delay
+        self.closed_weekdays = closed_weekdays
+        self.holidays = holidays
+
+    def _delays(self) -> dict[str, tuple[float, float, int]]:
+        return {"cases": self.case_delay, "admissions": self.admission_delay,
+                "deaths": self.death_delay}
+
+    def _pmf(self, delay: tuple[float, float, int], scale: float = 1.0) -> np.ndarray:
+        """One signal's delay pmf with its time scale multiplied by ``scale`` (mean and sd), and
+        the long-tail component mixed in when ``tail_share`` > 0."""
+        mean, sd, max_days = delay
+        pmf = gamma_delay_pmf(mean * scale, sd * scale, max_days)
+        if self.tail_share <= 0:
+            return pmf
+        tail = gamma_delay_pmf(*self.tail_delay)
+        out = np.zeros(max(pmf.size, tail.size))
+        out[: pmf.size] += (1.0 - self.tail_share) * pmf
+        out[: tail.size] += self.tail_share * tail
+        return out
 
     def delay_pmfs(self) -> dict[str, np.ndarray]:
-        """Reporting-delay pmf (index = days from reference date to report) per signal."""
-        return {
-            "cases": gamma_delay_pmf(*self.case_delay),
-            "admissions": gamma_delay_pmf(*self.admission_delay),
-            "deaths": gamma_delay_pmf(*self.death_delay),
-        }
+        """Reporting-delay pmf (index = days from reference date to report) per signal, before
+        any drift (reference day 0)."""
+        if self.tail_share <= 0:  # the original scenario, unchanged
+            return {
+                "cases": gamma_delay_pmf(*self.case_delay),
+                "admissions": gamma_delay_pmf(*self.admission_delay),
+                "deaths": gamma_delay_pmf(*self.death_delay),
+            }
+        return {sig: self._pmf(d) for sig, d in self._delays().items()}
+
+    def delay_scale(self, n_days: int) -> np.ndarray:
+        """Time scale of the reporting delay per reference day, shape (n_days,): 1 before
+        ``delay_drift[0]``, ``delay_drift[2]`` after ``delay_drift[1]``, log-linear between."""
+        if self.delay_drift is None:
+            return np.ones(n_days)
+        start, end, factor = self.delay_drift
+        frac = np.clip((np.arange(n_days) - start) / max(end - start, 1), 0.0, 1.0)
+        return np.exp(np.log(factor) * frac)
+
+    def delay_pmf_path(self, signal: str, n_days: int) -> np.ndarray:
+        """The delay pmf of each reference day, shape (n_days, max delay + 1).  Scaling the
+        mean and sd of a gamma together keeps its shape: only the time scale drifts."""
+        scale = self.delay_scale(n_days)
+        levels, inverse = np.unique(scale, return_inverse=True)
+        pmfs = [self._pmf(self._delays()[signal], float(f)) for f in levels]
+        width = max(p.size for p in pmfs)
+        table = np.zeros((len(pmfs), width))
+        for i, p in enumerate(pmfs):
+            table[i, : p.size] = p
+        return table[inverse]
+
+    def closed_report_days(self, n_report_days: int, first_weekday: int) -> np.ndarray:
+        """Which report days (day 0 = first simulated day) have no reporting at all."""
+        day = np.arange(n_report_days)
+        closed = np.isin((first_weekday + day) % 7, np.asarray(self.closed_weekdays, dtype=int))
+        hol = np.asarray(self.holidays, dtype=int)
+        closed[hol[(hol >= 0) & (hol < n_report_days)]] = True
+        return closed
 
     def clinical_pmfs(self) -> dict[str, np.ndarray]:
         """Lags from the epidemic event to the reference date (onset->admission, removal->death)."""
@@ -407,7 +469,85 @@ class ReportingProcess:
         """Triangles ``tri[r, t, d]`` (reports for day t arriving on day t+d) by signal."""
         pmfs = self.delay_pmfs()
         ref = self.reference_counts(path, first_weekday, rng)
-        return {sig: split_by_delay(ref[sig], pmfs[sig], rng) for sig in ref}
+        if self.delay_drift is None:
+            out = {sig: split_by_delay(ref[sig], pmfs[sig], rng) for sig in ref}
+        else:
+            n_days = ref["cases"].shape[1]
+            out = {sig: split_by_delay(ref[sig], self.delay_pmf_path(sig, n_days), rng)
+                   for sig in ref}
+        if self.closed_weekdays or self.holidays:
+            for sig, tri in out.items():
+                n_rep = tri.shape[1] + tri.shape[2] + 14
+                out[sig] = move_to_open_days(tri, self.closed_report_days(n_rep, first_weekday))
+        return out
+
+
+def move_to_open_days(tri: np.ndarray, closed: np.ndarray) -> np.ndarray:
+    """Reports due on a closed report day (weekend, holiday) arrive on the next open day.
+
+    ``tri[r, t, d]`` reports of reference day t at delay d are due on report day t + d;
+    ``closed`` flags report days (index 0 = reference day 0, long enough to cover t + d).
+    The delay axis grows by the longest closure so nothing is lost.
+    """
+    n_t, k = tri.shape[1], tri.shape[2]
+    closed = np.asarray(closed, dtype=bool)
+    next_open = np.full(closed.size, closed.size, dtype=np.int64)
+    nxt = closed.size
+    for day in range(closed.size - 1, -1, -1):  # next open day at or after each day
+        if not closed[day]:
+            nxt = day
+        next_open[day] = nxt
+    shift = next_open - np.arange(closed.size)
+    due = np.arange(n_t)[:, None] + np.arange(k)[None, :]
+    if due.max() >= closed.size:
+        raise ValueError("closed must cover every report day t + d")
+    s = shift[due]
+    out = np.zeros(tri.shape[:2] + (k + int(s.max()),), dtype=tri.dtype)
+    for step in np.unique(s):
+        tt, dd = np.nonzero(s == step)
+        out[:, tt, dd + step] += tri[:, tt, dd]
+    return out
+
+
+#: Named reporting scenarios of the simulator (built by :func:`reporting_scenario`).
+SCENARIOS: dict[str, str] = {
+    "default": "stationary signal-specific delays; weekend testing shortfall by reference date",
+    "delay_lengthens": "every signal's delay slows from mean 4 d (sd 3) to 8 d (sd 6) over the "
+                       "six weeks before the last fortnight",
+    "delay_shortens": "every signal's delay speeds up from mean 8 d (sd 6) to 4 d (sd 3) over "
+                      "the six weeks before the last fortnight",
+    "weekend_reporting": "nothing is reported on Saturdays, Sundays and two weekday holidays; "
+                         "those reports arrive on the next working day",
+    "long_tail": "a quarter of every signal's reports come late (mean 50 d, sd 20): over 20 % "
+                 "of the delay mass lies beyond 28 days",
+}
+
+
+def reporting_scenario(name: str, n_days: int = 200, first_weekday: int = 0
+                       ) -> ReportingProcess:
+    """The reporting process of a named scenario (:data:`SCENARIOS`); the epidemic is the same.
+
+    Changes are placed relative to the last simulated day L = n_days - 1: drifts ramp over
+    reference days L - 55 .. L - 14; holidays fall on the weekdays nearest L - 9 and L - 37.
+    """
+    last = n_days - 1
+    if name == "default":
+        return ReportingProcess()
+    if name in ("delay_lengthens", "delay_shortens"):
+        base, factor = ((4.0, 3.0, 28), 2.0) if name == "delay_lengthens" else ((8.0, 6.0, 28), 0.5)
+        return ReportingProcess(case_delay=base, admission_delay=base, death_delay=base,
+                                delay_drift=(last - 55, last - 14, factor))
+    if name == "weekend_reporting":
+        days = []
+        for target in (last - 9, last - 37):
+            day = target
+            while (first_weekday + day) % 7 >= 5:
+                day -= 1
+            days.append(day)
+        return ReportingProcess(closed_weekdays=(5, 6), holidays=tuple(days))
+    if name == "long_tail":
+        return ReportingProcess(tail_share=0.25)
+    raise ValueError(f"unknown scenario {name!r}; choose one of {', '.join(SCENARIOS)}")
 
 
 def inject_backlog_dump(
@@ -484,6 +624,13 @@ def artefact_window(n_days: int, n_snapshots: int, window: int) -> tuple[int, in
     if lo > hi:
         raise ValueError("scenario too short for artefacts: need n_days >= 30 and window >= 6")
     return lo, hi
+
+
+#: Options added after the demo set was committed, with their neutral values: left out of the
+#: recorded parameters when neutral, so the default scenario's files stay byte-identical.
+_NEW_OPTIONS: dict[str, object] = {"delay_drift": None, "tail_share": 0.0,
+                                   "tail_delay": (50.0, 20.0, 150), "closed_weekdays": (),
+                                   "holidays": ()}
 
 
 @dataclass
@@ -563,7 +710,8 @@ def simulate_outbreak(
         "seeds_per_district": seeds_per_district,
         "model": dict(vars(model)), "schedule": dict(vars(schedule)),
         "reporting": {k: list(v) if isinstance(v, tuple) else v
-                      for k, v in vars(reporting).items()},
+                      for k, v in vars(reporting).items() if k not in _NEW_OPTIONS
+                      or getattr(reporting, k) != _NEW_OPTIONS[k]},
     }
     return OutbreakScenario(
         names=names, populations=pops, seeds=seeds, mixing=mixing, path=path, triangles=tri,

@@ -1,8 +1,8 @@
-"""Scoring of quantile forecasts: pinball loss, WIS, coverage, PIT, bias, relative skill.
+"""Scoring of quantile forecasts: pinball loss, WIS (natural and log scale), coverage, PIT,
+bias, relative skill — numpy mathematics only.
 
-The numpy functions here are the reference implementation.  :func:`score_sql` returns the
-DuckDB SQL that the pipeline runs on the long ``out.forecasts`` table; the tests check that
-both give the same numbers.
+These functions are the reference implementation; the pipeline runs the same definitions as
+DuckDB SQL (:mod:`tallywave.pipeline.scores_sql`) and the tests check that both agree.
 
 Conventions (shared by numpy and SQL):
 
@@ -15,11 +15,22 @@ Conventions (shared by numpy and SQL):
   quantiles.  Quantile values are first sorted within each forecast (monotone rearrangement,
   so crossing quantiles are handled consistently).  Between two given quantiles the quantile
   function is linear.
+* Counts (``discrete=True``): a count y has the PIT range [F(y - 1), F(y)] of a discrete
+  predictive (the randomised PIT of Czado, Gneiting & Held 2009 draws uniformly in it).  From
+  quantiles alone F at whole numbers is read off the interpolated CDF half-way between them:
+  F(y) ~ H(y + 1/2), F(y - 1) ~ H(y - 1/2) (a continuity correction: H is then the CDF of the
+  count spread uniformly over [y - 1/2, y + 1/2]), and counts are non-negative, so H(-1/2) = 0.
+  For a perfect Poisson forecast this makes the PIT nearly uniform and the coverage nearly
+  nominal, where closed intervals at integer quantiles over-cover (Poisson(2): 0.72 / 0.98 for
+  50 % / 90 %).  Non-integer observations are scored as continuous.
+* Coverage of a central interval, tie-corrected: the share of the PIT range inside
+  [alpha/2, 1 - alpha/2] (the non-randomised coverage, expectation of the randomised one).
+* WIS on the log scale: WIS of log(y + 1) against log(q + 1) (Bosse et al. 2023), which scores
+  relative rather than absolute errors; negative values count as 0.
 """
 
 from __future__ import annotations
 
-import re
 from collections.abc import Sequence
 from typing import NamedTuple
 
@@ -186,8 +197,70 @@ def interval_coverage(y, q_levels, q_values, width: float) -> np.ndarray:
 # PIT and bias
 # ----------------------------------------------------------------------------------------------
 
+COUNT_LOWER = -0.5
+"""Where the interpolated CDF of a count reaches 0 (continuity correction: counts >= 0)."""
 
-def pit_bounds(y, q_levels, q_values, tails: str = "unknown") -> tuple[np.ndarray, np.ndarray]:
+
+def _sorted(q_levels, q_values) -> tuple[np.ndarray, np.ndarray]:
+    levels = np.atleast_1d(np.asarray(q_levels, dtype=float))
+    values = np.asarray(q_values, dtype=float)
+    if values.ndim == 1:
+        values = values[None, :]
+    order = np.argsort(levels, kind="stable")
+    return levels[order], np.sort(values[:, order], axis=1)  # monotone rearrangement
+
+
+def cdf_bounds(x, q_levels, q_values, tails: str = "unknown", lower: float | None = None
+               ) -> tuple[np.ndarray, np.ndarray]:
+    """Range [H(x-), H(x)] of the predictive CDF interpolated from the quantiles, at one x per
+    forecast, each (n,).
+
+    Between quantiles H is linear; at a value shared by several levels (a tie) the range spans
+    the tied levels.  Below the lowest level tau_1: ``tails="unknown"`` gives [0, tau_1] (and a
+    tie at the lowest value extends down to 0), ``"flat"`` gives 0; with a ``lower`` support bound
+    H is instead linear from (lower, 0) to (q_1, tau_1) and 0 below it.  Above the highest level:
+    [tau_K, 1] (``"unknown"``) or 1 (``"flat"``).
+    """
+    if tails not in ("unknown", "flat"):
+        raise ValueError(f"tails must be 'unknown' or 'flat', not {tails!r}")
+    lev, val = _sorted(q_levels, q_values)
+    x = np.atleast_1d(np.asarray(x, dtype=float))
+    n, k = val.shape
+    xx = x[:, None]
+    below = (val < xx).sum(axis=1)
+    tied = (val == xx).sum(axis=1)
+    rows = np.arange(n)
+    i_lo = np.clip(below - 1, 0, k - 1)
+    i_hi = np.clip(below, 0, k - 1)
+    q_lo, q_hi = val[rows, i_lo], val[rows, i_hi]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        interp = lev[i_lo] + (lev[i_hi] - lev[i_lo]) * (x - q_lo) / (q_hi - q_lo)
+    qmin = val[:, 0]
+    supported = np.zeros(n, dtype=bool) if lower is None else qmin > lower
+    first_low = np.where(supported, lev[0], 0.0)  # H(q_1-) with a support bound, else 0
+    t_lo = np.where(below == 0, first_low, lev[np.clip(below, 0, k - 1)])
+    t_hi = np.where(below + tied == k, 1.0, lev[np.clip(below + tied - 1, 0, k - 1)])
+    none_below = (tied == 0) & (below == 0)
+    all_below = (tied == 0) & (below == k)
+    if lower is not None:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            ramp = np.where(supported & (x >= lower), lev[0] * (x - lower) / (qmin - lower), 0.0)
+        left_lo = left_hi = ramp
+    elif tails == "unknown":
+        left_lo, left_hi = np.zeros(n), np.full(n, lev[0])
+    else:
+        left_lo = left_hi = np.zeros(n)
+    right = (lev[-1], 1.0) if tails == "unknown" else (1.0, 1.0)
+    low = np.select([tied > 0, none_below, all_below], [t_lo, left_lo, right[0]], interp)
+    high = np.select([tied > 0, none_below, all_below], [t_hi, left_hi, right[1]], interp)
+    bad = ~np.isfinite(x) | ~np.isfinite(val).all(axis=1)
+    low[bad] = np.nan
+    high[bad] = np.nan
+    return low, high
+
+
+def pit_bounds(y, q_levels, q_values, tails: str = "unknown", *, discrete: bool = False,
+               lower: float | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Range [F(y-), F(y)] of the predictive CDF at y implied by the quantiles, each (n,).
 
     Values are sorted per forecast; between given quantiles the quantile function is linear.
@@ -195,45 +268,18 @@ def pit_bounds(y, q_levels, q_values, tails: str = "unknown") -> tuple[np.ndarra
     tau_1, tau_k: ``tails="unknown"`` says only F(y) in [0, tau_1] (or [tau_k, 1]);
     ``tails="flat"`` puts that tail mass on the outermost quantile, so F(y) = 0 (or 1).
     If y equals the lowest (highest) quantile the range extends down to 0 (up to 1).
+    ``discrete``: a whole-number y is a count with range [H(y - 1/2), H(y + 1/2)] (see the
+    module notes; ``lower`` defaults to :data:`COUNT_LOWER` then).
     """
-    if tails not in ("unknown", "flat"):
-        raise ValueError(f"tails must be 'unknown' or 'flat', not {tails!r}")
     y, levels, values = _inputs(y, q_levels, q_values)
-    order = np.argsort(levels, kind="stable")
-    lev = levels[order]
-    val = np.sort(values[:, order], axis=1)  # monotone rearrangement
-    n, k = val.shape
-    yy = y[:, None]
-    below = (val < yy).sum(axis=1)
-    tied = (val == yy).sum(axis=1)
-    rows = np.arange(n)
-
-    # interior, no tie: y strictly between val[below-1] and val[below]
-    i_lo = np.clip(below - 1, 0, k - 1)
-    i_hi = np.clip(below, 0, k - 1)
-    q_lo, q_hi = val[rows, i_lo], val[rows, i_hi]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        frac = (y - q_lo) / (q_hi - q_lo)
-        interp = lev[i_lo] + (lev[i_hi] - lev[i_lo]) * frac
-
-    # ties: tied levels are lev[below] .. lev[below + tied - 1]
-    t_lo = np.where(below == 0, 0.0, lev[np.clip(below, 0, k - 1)])
-    t_hi = np.where(below + tied == k, 1.0, lev[np.clip(below + tied - 1, 0, k - 1)])
-
-    none_below = (tied == 0) & (below == 0)
-    all_below = (tied == 0) & (below == k)
-    if tails == "unknown":
-        left = (0.0, lev[0])
-        right = (lev[-1], 1.0)
-    else:
-        left = (0.0, 0.0)
-        right = (1.0, 1.0)
-    low = np.select([tied > 0, none_below, all_below], [t_lo, left[0], right[0]], interp)
-    high = np.select([tied > 0, none_below, all_below], [t_hi, left[1], right[1]], interp)
-    nan = ~np.isfinite(y) | ~np.isfinite(values).all(axis=1)
-    low[nan] = np.nan
-    high[nan] = np.nan
-    return low, high
+    if not discrete:
+        return cdf_bounds(y, levels, values, tails, lower)
+    low_bound = COUNT_LOWER if lower is None else lower
+    count = np.isfinite(y) & (y == np.round(y))
+    lo_c, _ = cdf_bounds(y - 0.5, levels, values, tails, low_bound)
+    _, hi_c = cdf_bounds(y + 0.5, levels, values, tails, low_bound)
+    lo_x, hi_x = cdf_bounds(y, levels, values, tails, low_bound)
+    return np.where(count, lo_c, lo_x), np.where(count, hi_c, hi_x)
 
 
 def pit_from_quantiles(
@@ -243,15 +289,16 @@ def pit_from_quantiles(
     rng: np.random.Generator | int | None = None,
     *,
     u=None,
+    discrete: bool = False,
 ) -> np.ndarray:
     """Randomised PIT value F(y-) + U (F(y) - F(y-)) from the quantiles, shape (n,).
 
     Draws U ~ U(0, 1) from ``rng`` (a Generator or an int seed); or takes ``u`` as given; with
-    neither, U = 1/2 (the mid-PIT).  Randomisation matters only on ties (e.g. a constant
-    predictive) and beyond the outermost levels, where only the range is known (tails
-    "unknown" in :func:`pit_bounds`); elsewhere the PIT is the interpolated F(y).
+    neither, U = 1/2 (the mid-PIT).  Randomisation matters on ties (e.g. a constant predictive),
+    beyond the outermost levels, where only the range is known (tails "unknown" in
+    :func:`pit_bounds`), and for counts (``discrete``: the range [F(y - 1), F(y)]).
     """
-    low, high = pit_bounds(y, q_levels, q_values, tails="unknown")
+    low, high = pit_bounds(y, q_levels, q_values, tails="unknown", discrete=discrete)
     if u is not None:
         uu = np.broadcast_to(np.asarray(u, dtype=float), low.shape)
     elif rng is not None:
@@ -261,16 +308,68 @@ def pit_from_quantiles(
     return low + uu * (high - low)
 
 
-def bias_from_quantiles(y, q_levels, q_values) -> np.ndarray:
+def randomised_pit(cdf_before, cdf_at, u) -> np.ndarray:
+    """Randomised PIT of a discrete predictive with known CDF: F(y - 1) + U (F(y) - F(y - 1))
+    (Czado, Gneiting & Held 2009); uniform when the forecast is the truth's distribution."""
+    lo = np.asarray(cdf_before, dtype=float)
+    return lo + np.asarray(u, dtype=float) * (np.asarray(cdf_at, dtype=float) - lo)
+
+
+def pit_histogram(low, high, bins: int = 10) -> np.ndarray:
+    """Non-randomised PIT histogram (Czado, Gneiting & Held 2009): the mean over forecasts of
+    the uniform distribution on each PIT range [low, high], as bin probabilities (sum 1).
+    Flat (1/bins each) for calibrated forecasts; no random numbers involved."""
+    lo = np.asarray(low, dtype=float).ravel()
+    hi = np.asarray(high, dtype=float).ravel()
+    ok = np.isfinite(lo) & np.isfinite(hi)
+    lo, hi = lo[ok], hi[ok]
+    edges = np.linspace(0.0, 1.0, bins + 1)
+    width = hi - lo
+    point = width <= 0
+    over = np.clip(np.minimum(edges[1:][None, :], hi[:, None])
+                   - np.maximum(edges[:-1][None, :], lo[:, None]), 0.0, None)
+    share = np.where(point[:, None], 0.0, over / np.where(point, 1.0, width)[:, None])
+    idx = np.clip((lo[point] * bins).astype(int), 0, bins - 1)
+    share[np.flatnonzero(point), idx] = 1.0
+    return share.mean(axis=0) if len(lo) else np.full(bins, np.nan)
+
+
+def coverage_fraction(low, high, width: float) -> np.ndarray:
+    """Tie-corrected coverage of the central ``width`` interval: the share of each PIT range
+    [low, high] inside [alpha/2, 1 - alpha/2] (a point range counts 1 inside, closed).  Its mean
+    is the nominal width for calibrated forecasts, also for counts with tied quantiles."""
+    if not 0.0 < width < 1.0:
+        raise ValueError(f"interval width {width!r} is outside (0, 1)")
+    a = (1.0 - width) / 2.0
+    lo = np.asarray(low, dtype=float)
+    hi = np.asarray(high, dtype=float)
+    span = hi - lo
+    with np.errstate(invalid="ignore", divide="ignore"):
+        inside = np.clip(np.minimum(hi, 1.0 - a) - np.maximum(lo, a), 0.0, None) / span
+    point = ((lo >= a) & (lo <= 1.0 - a)).astype(float)
+    out = np.where(span > 0, inside, point)
+    return np.where(np.isfinite(lo) & np.isfinite(hi), out, np.nan)
+
+
+def bias_from_quantiles(y, q_levels, q_values, *, discrete: bool = False) -> np.ndarray:
     """Bias 1 - F(y-) - F(y) in [-1, 1]: +1 when every quantile exceeds y (overprediction).
 
     The integer-forecast bias of Funk et al. (2019, PLoS Comput Biol), 1 - (P(y) + P(y - 1))
     (from memory), evaluated on the quantile-interpolated CDF with flat tails (tail mass on
     the outermost quantiles, :func:`pit_bounds` with ``tails="flat"``); equals 1 - 2 F(y)
-    where F is continuous at y.  The quantile adaptation is ours.
+    where F is continuous at y.  The quantile adaptation is ours; ``discrete`` reads F(y - 1)
+    and F(y) for counts as in :func:`pit_bounds`.
     """
-    low, high = pit_bounds(y, q_levels, q_values, tails="flat")
+    low, high = pit_bounds(y, q_levels, q_values, tails="flat", discrete=discrete)
     return 1.0 - low - high
+
+
+def log_wis(y, q_levels, q_values) -> np.ndarray:
+    """WIS on the log scale: of log(y + 1) against log(q + 1), negatives counted as 0
+    (Bosse et al. 2023, scoring epidemiological forecasts on transformed scales)."""
+    y, levels, values = _inputs(y, q_levels, q_values)
+    return weighted_interval_score(np.log1p(np.maximum(y, 0.0)), levels,
+                                   np.log1p(np.maximum(values, 0.0))).wis
 
 
 # ----------------------------------------------------------------------------------------------
@@ -282,17 +381,21 @@ def pairwise_relative_wis(
     df: pd.DataFrame,
     baseline: str = "baseline",
     by: Sequence[str] = ("signal", "horizon_days"),
+    column: str = "wis",
 ) -> pd.DataFrame:
     """Relative WIS per model via pairwise comparison on common forecasts (Cramer et al. 2022).
 
     theta_ij = mean WIS of i / mean WIS of j over forecasts both made (same region, signal,
-    issued_on, target_date, horizon_days); theta_i = geometric mean of theta_ij over all models
-    j (theta_ii = 1) with at least one common forecast; rel_wis = theta_i / theta_baseline.
-    Returns one row per (by..., model) with n_forecasts, mean_wis, n_compared, theta, rel_wis;
-    rel_wis is NaN when the baseline is absent from a group.
+    issued_on, target_date, horizon_days), used when both means are > 0; theta_i = geometric
+    mean of theta_ij over those j (including j = i, theta_ii = 1); rel_wis = theta_i /
+    theta_baseline (exactly 1 for the baseline).  The ``out.accuracy`` view computes the same
+    numbers in SQL (:mod:`tallywave.pipeline.accuracy`; a test checks they agree).
+    ``column``: the score compared (``wis`` or ``wis_log``).  Returns one row per (by...,
+    model) with n_forecasts, mean_wis, n_compared, theta, rel_wis; rel_wis is NaN when the
+    baseline is absent from a group or has no comparison.
     """
     by = list(by)
-    need = ["model", *COMMON_FORECAST_KEY, "wis", *by]
+    need = ["model", *COMMON_FORECAST_KEY, column, *by]
     missing = [c for c in dict.fromkeys(need) if c not in df.columns]
     if missing:
         raise ValueError(f"pairwise_relative_wis: missing column(s) {missing}")
@@ -313,15 +416,15 @@ def pairwise_relative_wis(
         n_rows, n_mod = int(rcode.max()) + 1, len(models)
         w = np.zeros((n_rows, n_mod))
         avail = np.zeros((n_rows, n_mod))
-        w[rcode, mcode] = g["wis"].to_numpy(dtype=float)
+        w[rcode, mcode] = g[column].to_numpy(dtype=float)
         avail[rcode, mcode] = 1.0
         # s[i, j] = total WIS of model i on forecasts that model j also made
         s = w.T @ avail
         common = (avail.T @ avail) > 0
+        ok = common & (s > 0) & (s.T > 0)  # both means positive (0 / 0 and x / 0 left out)
         with np.errstate(divide="ignore", invalid="ignore"):
-            log_theta = np.log(s) - np.log(s.T)  # mean ratio = sum ratio on common forecasts
-        ok = common & ~np.isnan(log_theta)  # 0/0 (both perfect) is left out
-        log_theta = np.where(ok, log_theta, 0.0)
+            log_theta = np.where(ok, np.log(np.where(ok, s, 1.0)) - np.log(np.where(ok, s.T,
+                                                                                      1.0)), 0.0)
         n_cmp = ok.sum(axis=1)
         with np.errstate(invalid="ignore", divide="ignore"):
             theta = np.exp(log_theta.sum(axis=1) / n_cmp)
@@ -329,7 +432,7 @@ def pairwise_relative_wis(
         base = np.nonzero(models == baseline)[0]
         with np.errstate(invalid="ignore", divide="ignore"):
             rel = theta / theta[base[0]] if base.size else np.full(n_mod, np.nan)
-        if base.size:
+        if base.size and np.isfinite(theta[base[0]]):
             rel[base[0]] = 1.0
         n_fc = avail.sum(axis=0)
         res = pd.DataFrame({
@@ -347,132 +450,3 @@ def pairwise_relative_wis(
     if not out:
         return pd.DataFrame(columns=cols)
     return pd.concat(out, ignore_index=True)[cols]
-
-
-# ----------------------------------------------------------------------------------------------
-# SQL
-# ----------------------------------------------------------------------------------------------
-
-_IDENT = re.compile(r'^(?:[A-Za-z_][A-Za-z0-9_]*|"[^"]+")(?:\.(?:[A-Za-z_][A-Za-z0-9_]*|"[^"]+"))*$')
-
-
-def _check_ident(name: str, what: str) -> str:
-    if not _IDENT.match(name):
-        raise ValueError(f"{what} {name!r} is not a (qualified) table or column name")
-    return name
-
-
-def pit_uniform_sql(seed: int = 0, alias: str = "") -> str:
-    """SQL expression for the per-forecast pseudo-uniform U in [0, 1] used by the SQL PIT.
-
-    A hash of the forecast key and ``seed``: deterministic, independent of row order/threads.
-    """
-    p = f"{_check_ident(alias, 'alias')}." if alias else ""
-    cols = ", ".join(f"{p}{c}" for c in FORECAST_KEY)
-    return f"(hash({cols}, {int(seed)})::DOUBLE / 18446744073709551616.0)"
-
-
-def score_sql(
-    forecast_table: str = "out.forecasts",
-    truth_table: str = "truth",
-    *,
-    randomise_pit: bool = True,
-    pit_seed: int = 0,
-    extra_truth_columns: Sequence[str] = (),
-) -> str:
-    """DuckDB SQL scoring every forecast in a long quantile table against a truth table.
-
-    Input: ``forecast_table`` with FORECAST_KEY + (q_level, value); ``truth_table`` with
-    (region, signal, target_date, truth, *extra_truth_columns), one row per key.  Output one
-    row per forecast: truth, n_levels, levels_ok, wis, dispersion, overprediction,
-    underprediction, abs_error, covered_50, covered_90, pit_low, pit_high, pit, bias — the
-    same numbers as the numpy functions (``pit`` with U from :func:`pit_uniform_sql`, or 1/2
-    when ``randomise_pit`` is false).  Rows with ``levels_ok = false`` (levels not the median
-    plus symmetric pairs, or duplicated rows) must not be used.
-    """
-    ft = _check_ident(forecast_table, "forecast table")
-    tt = _check_ident(truth_table, "truth table")
-    extra = [_check_ident(c, "truth column") for c in extra_truth_columns]
-    key = ", ".join(FORECAST_KEY)
-    key_f = ", ".join(f"f.{c}" for c in FORECAST_KEY)
-    extra_j = "".join(f", t.{c}" for c in extra)
-    extra_a = "".join(f",\n        any_value({c}) AS {c}" for c in extra)
-    extra_s = "".join(f", {c}" for c in extra)
-    eps = repr(LEVEL_TOL)
-    u = pit_uniform_sql(pit_seed) if randomise_pit else "0.5"
-    return f"""
-WITH j AS (
-    SELECT {key_f},
-           CAST(f.q_level AS DOUBLE) AS tau,
-           CAST(f.value AS DOUBLE) AS q,
-           CAST(t.truth AS DOUBLE) AS y{extra_j}
-    FROM {ft} AS f
-    JOIN {tt} AS t
-      ON f.region = t.region AND f.signal = t.signal AND f.target_date = t.target_date
-    WHERE isfinite(CAST(f.value AS DOUBLE)) AND isfinite(CAST(f.q_level AS DOUBLE))
-      AND isfinite(CAST(t.truth AS DOUBLE))
-),
-a AS (
-    SELECT {key},
-        any_value(y) AS truth{extra_a},
-        count(*) AS n_levels,
-        -- WIS = 2 * mean pinball loss over the 2K + 1 quantiles (Bracher et al. 2021)
-        2 * avg((CASE WHEN y < q THEN 1.0 ELSE 0.0 END - tau) * (q - y)) AS wis,
-        2 * avg(CASE WHEN tau < 0.5 - {eps} THEN -tau * q
-                     WHEN tau > 0.5 + {eps} THEN (1 - tau) * q
-                     ELSE 0.0 END) AS dispersion,
-        2 * avg(CASE WHEN tau < 0.5 - {eps} THEN greatest(q - y, 0.0)
-                     WHEN tau > 0.5 + {eps} THEN 0.0
-                     ELSE 0.5 * greatest(q - y, 0.0) END) AS overprediction,
-        2 * avg(CASE WHEN tau > 0.5 + {eps} THEN greatest(y - q, 0.0)
-                     WHEN tau < 0.5 - {eps} THEN 0.0
-                     ELSE 0.5 * greatest(y - q, 0.0) END) AS underprediction,
-        max(q) FILTER (WHERE abs(tau - 0.5) <= {eps}) AS q50,
-        max(q) FILTER (WHERE abs(tau - 0.25) <= {eps}) AS q25,
-        max(q) FILTER (WHERE abs(tau - 0.75) <= {eps}) AS q75,
-        max(q) FILTER (WHERE abs(tau - 0.05) <= {eps}) AS q05,
-        max(q) FILTER (WHERE abs(tau - 0.95) <= {eps}) AS q95,
-        count(*) FILTER (WHERE q < y) AS n_below,
-        count(*) FILTER (WHERE q = y) AS n_tied,
-        max(q) FILTER (WHERE q < y) AS q_below,
-        min(q) FILTER (WHERE q > y) AS q_above,
-        list_sort(list(tau)) AS taus
-    FROM j
-    GROUP BY {key}
-),
-p AS (
-    SELECT *,
-        -- levels = median + symmetric pairs: sorted levels strictly increasing, inside (0, 1),
-        -- odd in number and taus[i] + taus[n + 1 - i] = 1 (so the middle one is 0.5)
-        (n_levels % 2 = 1 AND taus[1] > 0 AND taus[n_levels] < 1
-         AND coalesce(list_bool_and([taus[i + 1] - taus[i] > {eps}
-                                     for i in range(1, n_levels)]), true)
-         AND list_bool_and([abs(taus[i] + taus[n_levels + 1 - i] - 1) <= {eps}
-                            for i in range(1, n_levels + 1)])) AS levels_ok,
-        CASE WHEN n_tied > 0 THEN (CASE WHEN n_below = 0 THEN 0.0 ELSE taus[n_below + 1] END)
-             WHEN n_below = 0 THEN 0.0
-             WHEN n_below = n_levels THEN taus[n_levels]
-             ELSE taus[n_below] + (taus[n_below + 1] - taus[n_below])
-                  * (truth - q_below) / (q_above - q_below)
-        END AS pit_low,
-        CASE WHEN n_tied > 0 THEN (CASE WHEN n_below + n_tied = n_levels THEN 1.0
-                                        ELSE taus[n_below + n_tied] END)
-             WHEN n_below = 0 THEN taus[1]
-             WHEN n_below = n_levels THEN 1.0
-             ELSE taus[n_below] + (taus[n_below + 1] - taus[n_below])
-                  * (truth - q_below) / (q_above - q_below)
-        END AS pit_high
-    FROM a
-)
-SELECT {key}, truth{extra_s}, n_levels, levels_ok,
-    wis, dispersion, overprediction, underprediction,
-    abs(q50 - truth) AS abs_error,
-    (q25 <= truth AND truth <= q75) AS covered_50,
-    (q05 <= truth AND truth <= q95) AS covered_90,
-    pit_low, pit_high,
-    pit_low + {u} * (pit_high - pit_low) AS pit,
-    CASE WHEN n_tied = 0 AND n_below = 0 THEN 1.0
-         WHEN n_tied = 0 AND n_below = n_levels THEN -1.0
-         ELSE 1.0 - pit_low - pit_high END AS bias
-FROM p
-"""

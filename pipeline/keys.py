@@ -28,6 +28,8 @@ NATURAL_KEYS: dict[str, tuple[str, ...]] = {
     "out.runs": ("run_id",),
     "out.delay_pmf": ("run_id", "region", "signal", "delay_days"),
     "out.delay_drift": ("run_id", "region", "signal", "week_start"),
+    "out.delay_model": ("run_id", "region", "signal"),
+    "out.delay_signal": ("run_id", "signal"),
     "out.nowcast": ("run_id", "region", "signal", "ref_date", "q_level"),
     "out.rt": ("run_id", "region", "signal", "ref_date", "q_level"),
     "out.growth": ("run_id", "region", "signal", "ref_date"),

@@ -1,9 +1,18 @@
-"""Stage 4 — nowcast: vintages → reporting triangle → delay pmf → eventual counts with intervals.
+"""Stage 4 — nowcast: vintages → reporting triangle → delay model → eventual counts with intervals.
 
 Reads ``core.observations`` (only vintages with ``as_of <= as_of``) and writes ``out.delay_pmf``,
-``out.delay_drift``, ``out.nowcast`` and one ``out.fits`` row per region × signal (model
-``nowcast``) saying whether the region's own delay distribution or a pooled one was used.
-Mathematics: :mod:`tallywave.models.delay`.
+``out.delay_drift``, ``out.delay_model`` (per region × signal: which delay model, today's and
+earlier mean delay, tail, back-test), ``out.delay_signal`` (per signal: weekday test, holidays,
+tail, settle horizon), ``out.nowcast`` and one ``out.fits`` row per region × signal (model
+``nowcast``).  Mathematics: :mod:`tallywave.models.delay`.
+
+Per signal, computed once over all its regions before batching (so ``batch_regions`` never
+changes a result): closed report days (listed holidays and detected closures), the report-weekday
+test, the geometric tail of the "≥ D" bin, the pooled delay fits (without and with drift, now and
+``nowcast_backtest_days`` earlier) and the signal's own back-test.  Per region (in batches): the
+back-test of both candidates — each region keeps the drifting-delay model when it would have
+nowcast the last days better by ``nowcast_drift_margin`` log-score units — then the fit and the
+predictive draws, from one random stream per region (``series_seeds``).
 """
 
 from __future__ import annotations
@@ -17,13 +26,34 @@ import duckdb
 import numpy as np
 import pandas as pd
 
-from tallywave.models.delay import ChainLadder, DelayGLM, DelayNowcaster, mean_delay_by_week
+from tallywave.models.base import series_seeds
+from tallywave.models.delay import (
+    ChainLadder,
+    DelayGLM,
+    DelayNowcaster,
+    PooledDelay,
+    aggregate_triangle,
+    backtest_arrivals,
+    backtest_drift,
+    closed_report_days,
+    estimate_tail_shape,
+    fit_tail,
+    mean_delay_by_week,
+    weekday_lr_test,
+)
 from tallywave.pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
 from tallywave.pipeline.settings import Settings
 from tallywave.pipeline.store import insert_df
 from tallywave.pipeline.vintages import vintages_as_of
 
 NOWCAST_LEVELS = [0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975]
+#: Weekday effects are kept for a signal when the quasi-likelihood ratio test rejects "no
+#: weekday effect" at this level (a strict level: the effects cost 6 parameters per region).
+WEEKDAY_TEST_LEVEL = 0.001
+#: How far back (days) the report compares a region's mean delay with today's.
+DRIFT_LOOKBACK_DAYS = 28
+#: Settle horizon written per signal: this quantile of the pooled delay distribution.
+SETTLE_QUANTILE = 0.99
 
 #: Joint predictive draws of the eventual counts of the nowcast window, handed to the R_t and
 #: forecast stages of the same run (a connection-scoped temporary table: large, and only
@@ -35,22 +65,43 @@ DRAWS_DDL = ("CREATE OR REPLACE TEMP TABLE nowcast_draws (region VARCHAR, signal
 @dataclass
 class Triangle:
     """Reporting triangle of one signal: ``cells[s, t, d]`` = events of ref date t reported at
-    delay d (NaN where not observable on as_of or before the first snapshot)."""
+    delay d (NaN where not observable on as_of or before the first snapshot); with ``tail`` the
+    last column holds every report at delay >= D known on as_of (the "≥ D" bin)."""
 
     signal: str
     regions: np.ndarray
     dates: np.ndarray  # (n_ref,) datetime64[D]
     cells: np.ndarray  # (n_regions, n_ref, D+1)
     latest: np.ndarray  # (n_regions, n_ref) value known on as_of (all delays, incl. > D)
+    tail: bool = False
+
+    def take(self, idx: Any) -> Triangle:
+        """The triangle of a subset of regions."""
+        return Triangle(self.signal, self.regions[idx], self.dates, self.cells[idx],
+                        self.latest[idx], self.tail)
+
+    def aligned(self, regions: np.ndarray) -> Triangle:
+        """The same triangle with rows for ``regions`` (NaN cells, 0 reported where absent)."""
+        pos = {r: i for i, r in enumerate(self.regions)}
+        idx = np.array([pos.get(r, -1) for r in regions], dtype=np.int64)
+        cells = np.full((len(regions),) + self.cells.shape[1:], np.nan)
+        latest = np.zeros((len(regions), self.latest.shape[1]))
+        ok = idx >= 0
+        cells[ok] = self.cells[idx[ok]]
+        latest[ok] = self.latest[idx[ok]]
+        return Triangle(self.signal, np.asarray(regions), self.dates, cells, latest, self.tail)
 
 
 def build_triangles(vintages: pd.DataFrame, as_of: dt.date, max_delay: int, n_ref: int,
-                    first_as_of: dict[str, dt.date]) -> dict[str, Triangle]:
+                    first_as_of: dict[str, dt.date], *, tail: bool = False
+                    ) -> dict[str, Triangle]:
     """Turn vintage rows (region, signal, ref_date, as_of, value) into one triangle per signal.
 
     The value of a ref date known at delay d is the last vintage with as_of <= ref_date + d; the
     cell is its increment over delay d-1.  Reference dates before a signal's first snapshot were
     never seen at small delays, so their rows are left unobserved (NaN) rather than guessed.
+    ``tail``: the last column is the "≥ D" bin (value on as_of minus the value known at D - 1)
+    instead of the single delay D.
     """
     out: dict[str, Triangle] = {}
     end = np.datetime64(as_of, "D")
@@ -59,18 +110,20 @@ def build_triangles(vintages: pd.DataFrame, as_of: dt.date, max_delay: int, n_re
     D = max_delay
     for signal, g in vintages.groupby("signal", sort=True):
         ref = g["ref_date"].to_numpy().astype("datetime64[D]")
-        keep = ref >= start
+        asof = g["as_of"].to_numpy().astype("datetime64[D]")
+        keep = (ref >= start) & (asof <= end)
         g = g[keep]
         ref = ref[keep]
+        asof = asof[keep]
         regions, r_idx = np.unique(g["region"].to_numpy().astype(str), return_inverse=True)
         t_idx = (ref - start).astype(int)
-        delay = (g["as_of"].to_numpy().astype("datetime64[D]") - ref).astype(int)
+        delay = (asof - ref).astype(int)
         vals = g["value"].to_numpy(dtype=float)
         n = len(regions)
         known = np.full((n, n_ref, D + 1), np.nan)
         latest = np.full((n, n_ref), np.nan)
         # rows are sorted by as_of within a key, so later writes win
-        order = np.lexsort((g["as_of"].to_numpy(), t_idx, r_idx))
+        order = np.lexsort((asof, t_idx, r_idx))
         r_o, t_o, d_o, v_o = r_idx[order], t_idx[order], delay[order], vals[order]
         latest[r_o, t_o] = v_o
         in_tri = d_o <= D
@@ -83,7 +136,10 @@ def build_triangles(vintages: pd.DataFrame, as_of: dt.date, max_delay: int, n_re
         # before the first report of a ref date its value is 0 (nothing reported yet)
         filled = np.where(np.isnan(filled) & first_seen[..., None], 0.0, filled)
         filled = np.where(np.isnan(filled), 0.0, filled)
+        latest = np.where(np.isnan(latest), 0.0, latest)
         cells = np.diff(filled, axis=2, prepend=0.0)
+        if tail and D >= 1:
+            cells[:, :, D] = latest - filled[:, :, D - 1]
         # not observable yet on as_of
         t_grid = np.arange(n_ref)[:, None]
         d_grid = np.arange(D + 1)[None, :]
@@ -94,8 +150,7 @@ def build_triangles(vintages: pd.DataFrame, as_of: dt.date, max_delay: int, n_re
         if fa is not None:
             censored = dates < np.datetime64(fa, "D")
             cells[:, censored, :] = np.nan
-        latest = np.where(np.isnan(latest), 0.0, latest)
-        out[str(signal)] = Triangle(str(signal), regions, dates, cells, latest)
+        out[str(signal)] = Triangle(str(signal), regions, dates, cells, latest, tail)
     return out
 
 
@@ -120,31 +175,172 @@ def _mask_backlog_rows(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
     return n
 
 
-def _fit_block(args: tuple[Triangle, dict[str, Any], int]) -> dict[str, Any]:
-    """Fit the delay model and draw the nowcast for one batch of regions (pure; runs in tasks)."""
-    tri, cfg, seed = args
-    rng = np.random.default_rng(seed)
+def _weekday(date: np.datetime64) -> int:
+    """Weekday of a datetime64[D] (Monday = 0)."""
+    return int((date.astype("datetime64[D]").astype(int) + 3) % 7)
+
+
+@dataclass
+class SignalDelay:
+    """Everything computed once per signal over all its regions, handed to every batch."""
+
+    template: DelayGLM  # settings of the per-region fits (drift set per region later)
+    pooled: PooledDelay | None
+    pooled_then: PooledDelay | None
+    template_then: DelayGLM | None
+    agg_gain: float  # the signal's own back-test gain (drifting - stationary)
+    weekday_stat: float
+    weekday_used: bool
+    holidays: list[str]
+    tail_shape: tuple[float, float] | None
+
+
+def _holidays(cfg: dict[str, Any], tri: Triangle) -> tuple[np.ndarray, list[str]]:
+    """Report-day indices (day 0 = the triangle's first date) of listed holidays and of detected
+    closures (nothing reported on a weekday that usually brings reports); and their dates."""
+    start = tri.dates[0]
+    listed = [np.datetime64(dt.date.fromisoformat(str(h)), "D") for h in
+              cfg.get("nowcast_holidays", [])]
+    idx = {int((d - start).astype(int)) for d in listed}
+    idx |= {int(i) for i in closed_report_days(tri.cells, _weekday(start))}
+    days = np.asarray(sorted(i for i in idx if i >= 0), dtype=np.int64)
+    return days, [str(start + np.timedelta64(int(i), "D")) for i in days]
+
+
+def tail_history(con: duckdb.DuckDBPyConnection, as_of: dt.date, signal: str, max_delay: int,
+                 days: int, first_as_of: dt.date | None) -> pd.DataFrame:
+    """Per reference date of the last ``days`` that is at least ``max_delay`` days old: the
+    signal's reports at delays < D (summed over regions), those at delays >= D known on as_of,
+    and how many tail delays it has had (age).  Dates whose first D days preceded the first
+    snapshot are left out (their split is unknown)."""
+    D = int(max_delay)
+    lo = as_of - dt.timedelta(days=days - 1)
+    if first_as_of is not None:
+        lo = max(lo, first_as_of - dt.timedelta(days=D - 1))
+    df = con.execute(
+        """WITH k AS (
+               SELECT region, ref_date,
+                      coalesce(arg_max(value, as_of) FILTER (
+                          WHERE as_of <= ref_date + ?::INTEGER - 1), 0) AS v_before,
+                      arg_max(value, as_of) AS v_latest
+               FROM core.observations
+               WHERE signal = ? AND as_of <= ? AND ref_date >= ? AND ref_date <= ?
+               GROUP BY region, ref_date)
+           SELECT ref_date, sum(v_before) AS before, sum(v_latest - v_before) AS seen
+           FROM k GROUP BY ref_date ORDER BY ref_date""",
+        [D, signal, as_of, lo, as_of - dt.timedelta(days=D)]).df()
+    ref = pd.to_datetime(df["ref_date"]).dt.date
+    df["age"] = [(as_of - r).days - D + 1 for r in ref]
+    return df
+
+
+def _signal_delay(tri: Triangle, then: Triangle | None, cfg: dict[str, Any],
+                  history: pd.DataFrame | None = None) -> SignalDelay:
+    """The signal-level part of the delay model (see the module docstring)."""
     D = int(cfg["max_delay_days"])
+    tail = tri.tail
+    holidays, hol_dates = _holidays(cfg, tri)
+    template = DelayGLM(family=cfg["nowcast_family"], weekday_effect=False,
+                        first_ref_weekday=_weekday(tri.dates[0]), holidays=holidays,
+                        drift_sd=float(cfg["nowcast_drift_sd"]),
+                        tail=cfg["nowcast_tail"] if tail else "none", max_delay=D,
+                        pool_below=float(cfg["nowcast_pool_below"]), tol=1e-7)
+    ratio = None
+    if tail and history is not None and len(history) > D:
+        size, mean, _ = fit_tail(history["before"].to_numpy(), history["seen"].to_numpy(),
+                                 history["age"].to_numpy(), cfg["nowcast_tail"])
+        ratio = (size, mean)
+    elif tail:
+        ratio = estimate_tail_shape(tri.cells, template)
+    template.tail_shape = ratio
+    stat, used = 0.0, False
+    if cfg["nowcast_weekday_effect"] and np.isfinite(tri.cells).any():
+        stat, _, p_value = weekday_lr_test(tri.cells, template)
+        used = p_value < WEEKDAY_TEST_LEVEL
+    template.weekday_effect = used
+    mode = cfg["nowcast_drift"]
+    pooled = PooledDelay.fit(tri.cells, template, with_drift=mode != "off")
+    pooled_then = template_then = None
+    gain = 0.0
+    if then is not None and mode == "auto":
+        lag = int((tri.dates[-1] - then.dates[-1]).astype(int))
+        template_then = DelayGLM(**{**template.get_params(),
+                                    "first_ref_weekday": _weekday(then.dates[0]),
+                                    "holidays": np.asarray(holidays) + lag})
+        pooled_then = PooledDelay.fit(then.cells, template_then)
+        agg_now, agg_then = aggregate_triangle(tri.cells), aggregate_triangle(then.cells)
+        exposure, y = backtest_arrivals(agg_now, agg_then, lag, ratio, D + 1)
+        choice = backtest_drift(agg_then, None, exposure, y, template_then, pooled=False,
+                                family=cfg["nowcast_family"])
+        gain = float(choice.gain[0])
+    return SignalDelay(template, pooled, pooled_then, template_then, gain, stat, used,
+                       hol_dates, ratio)
+
+
+def _fit_block(args: tuple[Triangle, Triangle | None, SignalDelay, dict[str, Any]]
+               ) -> dict[str, Any]:
+    """Choose, fit and sample the delay model for one batch of regions (pure; runs in tasks).
+
+    ``then``: the same regions' triangle ``nowcast_backtest_days`` earlier (None: no back-test).
+    """
+    tri, then, sig, cfg = args
+    D = int(cfg["max_delay_days"])
+    n = len(tri.regions)
+    mode = cfg["nowcast_drift"]
+    gain = np.zeros(n)
+    miss = np.full((n, 2), np.nan)
+    rows = np.zeros(n)
     if cfg["nowcast_method"] == "chain_ladder":
         model: Any = ChainLadder(max_delay=D)
+        drift = np.zeros(n, dtype=bool)
     else:
-        weekday = int((tri.dates[0].astype("datetime64[D]").astype(int) + 3) % 7)  # Monday = 0
-        model = DelayGLM(family=cfg["nowcast_family"], weekday_effect=cfg["nowcast_weekday_effect"],
-                         first_ref_weekday=weekday, max_delay=D,
-                         pool_below=float(cfg["nowcast_pool_below"]))
-    nc = DelayNowcaster(model=model, family=cfg["nowcast_family"]).fit(tri.cells,
-                                                                      reported=tri.latest)
+        if mode == "auto" and then is not None and sig.template_then is not None:
+            lag = int((tri.dates[-1] - then.dates[-1]).astype(int))
+            exposure, y = backtest_arrivals(tri.cells, then.cells, lag, sig.tail_shape, D + 1)
+            choice = backtest_drift(then.cells, then.latest, exposure, y, sig.template_then,
+                                    sig.pooled_then, family=cfg["nowcast_family"])
+            gain, miss, rows = choice.gain, choice.miss90, choice.n_rows
+            w = choice.pool_weight
+            drift = (w * gain + (1.0 - w) * sig.agg_gain) > float(cfg["nowcast_drift_margin"])
+        else:
+            drift = np.full(n, mode == "on")
+        model = DelayGLM(**{**sig.template.get_params(),
+                            "drift": drift if mode != "off" else False})
+    nc = DelayNowcaster(model=model, family=cfg["nowcast_family"], window=D + 1,
+                        random_state=series_seeds(int(cfg["seed"]), tri.signal, tri.regions))
+    nc.fit(tri.cells, reported=tri.latest, pooled=sig.pooled)
     # one set of joint draws gives both the published quantiles and the draws handed on to R_t
     # and the forecasts, so both describe the same predictive distribution
-    draws = nc.sample(int(cfg["nowcast_draws"]), rng=rng)  # (m, n, n_ref)
+    draws = nc.sample(int(cfg["nowcast_draws"]))  # (m, n, n_ref)
     q = np.moveaxis(np.quantile(draws, NOWCAST_LEVELS, axis=0), 0, -1)
     q = np.maximum.accumulate(q, axis=-1)
     keep = min(int(cfg["nowcast_joint_draws"]), draws.shape[0])
     joint = np.ascontiguousarray(np.moveaxis(draws[:keep, :, -(D + 1):], 0, -1))
-    weekly = mean_delay_by_week(tri.cells)
+    weekly = mean_delay_by_week(tri.cells, horizon=D - 1 if tri.tail else None)
+    m = nc.model_
     return {"pmf": nc.delay_pmf_, "q": q, "pooling": np.asarray(nc.pooling_, dtype=str),
             "drift": (weekly.mean_delay, tri.dates[weekly.week_first_row]),
-            "draws": joint.astype(np.float32)}
+            "draws": joint.astype(np.float32), "summary": _summary(m, drift, gain, miss, rows)}
+
+
+def _summary(m: Any, drift: np.ndarray, gain: np.ndarray, miss: np.ndarray,
+             rows: np.ndarray) -> dict[str, np.ndarray]:
+    """Per-region facts about the fitted delay model for ``out.delay_model``."""
+    pmf = m.delay_pmf_
+    today = m.mean_delay(pmf)
+    before = today.copy()
+    tilt = getattr(m, "tilt_", None)
+    design = m.design_
+    if tilt is not None and design.seg is not None:
+        back = max(0, design.n_seg - 1 - DRIFT_LOOKBACK_DAYS // 7)
+        then_pmf = m.base_pmf_ * np.exp(tilt[:, back][:, None] * design.dvec[None, :])
+        then_pmf = then_pmf / np.maximum(then_pmf.sum(axis=1, keepdims=True), 1e-300)
+        before = np.where(drift, m.mean_delay(then_pmf), today)
+    chosen = np.where(drift, miss[:, 1], miss[:, 0]) if miss.size else np.full(len(drift), np.nan)
+    return {"model": np.where(drift, "drifting", "stationary"), "mean_today": today,
+            "mean_before": before, "tail_prob": pmf[:, -1] if m.tail_shape_ is not None else
+            np.zeros(len(drift)), "q99": m.delay_quantile(SETTLE_QUANTILE, pmf),
+            "gain": gain, "miss90": chosen, "rows": rows}
 
 
 def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, *,
@@ -159,83 +355,168 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
     con.execute(DRAWS_DDL)
     for signal in sorted(firsts):
         cfg = settings.for_signal(signal)
-        D = int(cfg["max_delay_days"])
-        n_ref = max(int(cfg["nowcast_training_days"]), D + 7)
-        since = as_of - dt.timedelta(days=n_ref - 1)
-        vint = vintages_as_of(con, as_of, since=since, signals=[signal])
-        vint = vint[vint["signal"] == signal]
-        if vint.empty:
+        got = _nowcast_signal(con, as_of, run_id, signal, cfg, firsts, mapper)
+        if got is None:
             continue
-        tri = build_triangles(vint, as_of, D, n_ref, firsts)[signal]
-        _mask_backlog_rows(con, run_id, signal, tri)
-        parts = batches(len(tri.regions), int(cfg["batch_regions"]))
-        jobs = [(Triangle(signal, tri.regions[s], tri.dates, tri.cells[s], tri.latest[s]), cfg,
-                 int(cfg["seed"]) + i) for i, s in enumerate(parts)]
-        results = mapper(_fit_block, jobs)
-        good = [(s, r) for s, r in zip(parts, results, strict=True) if not isinstance(r, BatchFailure)]
-        for s, r in zip(parts, results, strict=True):
-            if isinstance(r, BatchFailure):
-                skipped.extend(f"{signal}/{x}: {r.message[:200]}" for x in tri.regions[s])
-        if not good:
-            continue
-        keep_rows = np.concatenate([np.arange(len(tri.regions))[s] for s, _ in good])
-        tri = Triangle(signal, tri.regions[keep_rows], tri.dates, tri.cells[keep_rows],
-                       tri.latest[keep_rows])
-        pmf = np.concatenate([r["pmf"] for _, r in good])
-        q = np.concatenate([r["q"] for _, r in good])
-        joint = np.concatenate([r["draws"] for _, r in good])  # (n, D+1, m)
-        pooling = np.concatenate([r["pooling"] for _, r in good])
-        drift_dates = good[0][1]["drift"][1]
-        drift = np.concatenate([r["drift"][0] for _, r in good])
-        n_reg = len(tri.regions)
-        # Too little history (e.g. the first snapshot of a feed): no delay distribution can be
-        # estimated; say so, publish no pmf, and let the nowcast equal what is reported.
-        usable = np.isfinite(pmf).all(axis=1) & (np.nansum(pmf, axis=1) > 0.5)
-        pooling = np.where(usable, pooling, "insufficient")
-        q = np.where(usable[:, None, None] & np.isfinite(q), q, tri.latest[..., None])
-        # out.delay_pmf
-        insert_df(con, "out.delay_pmf", pd.DataFrame({
-            "run_id": run_id, "region": np.repeat(tri.regions[usable], D + 1), "signal": signal,
-            "delay_days": np.tile(np.arange(D + 1), int(usable.sum())),
-            "prob": pmf[usable].reshape(-1)}))
-        # out.delay_drift
-        w = len(drift_dates)
-        insert_df(con, "out.delay_drift", pd.DataFrame({
-            "run_id": run_id, "region": np.repeat(tri.regions, w), "signal": signal,
-            "week_start": np.tile(np.asarray(drift_dates, dtype="datetime64[D]"), n_reg),
-            "mean_delay_days": drift.reshape(-1)}))
-        # out.nowcast: the last D+1 reference dates (older ones are complete)
-        keep = slice(n_ref - (D + 1), n_ref)
-        dates = tri.dates[keep]
-        qk = q[:, keep, :]
-        reported = tri.latest[:, keep]
-        # the nowcast never goes below what is already reported (incl. reports after delay D)
-        qk = np.maximum(qk, reported[..., None])
-        k = len(NOWCAST_LEVELS)
-        t = len(dates)
-        joint = np.where(usable[:, None, None], joint, reported[..., None])
-        _write_draws(con, signal, tri.regions, dates, np.maximum(joint, reported[..., None]))
-        n_written += insert_df(con, "out.nowcast", pd.DataFrame({
-            "run_id": run_id, "region": np.repeat(tri.regions, t * k), "signal": signal,
-            "ref_date": np.tile(np.repeat(dates, k), n_reg),
-            "reported": np.repeat(reported.reshape(-1), k),
-            "q_level": np.tile(NOWCAST_LEVELS, n_reg * t), "value": qk.reshape(-1)}))
-        insert_df(con, "out.fits", pd.DataFrame({
-            "run_id": run_id, "region": tri.regions, "model": "nowcast",
-            "params_json": [json.dumps({"pooling": str(p), "method": cfg["nowcast_method"],
-                                        "family": cfg["nowcast_family"],
-                                        "mean_delay_days": float(np.sum(np.arange(D + 1) * row))
-                                        if ok else None})
-                            for p, row, ok in zip(pooling, pmf, usable, strict=True)],
-            "objective": np.nan, "converged": usable,
-            "message": [f"delay distribution: {p}" if ok else
-                        "too little reporting history to estimate delays; nowcast = reported"
-                        for p, ok in zip(pooling, usable, strict=True)], "signal": signal}))
-        lines.append(f"{signal}: {n_reg} regions ({int(np.sum(pooling != 'own'))} pooled/shrunk)")
-    out = {"line": "; ".join(lines) or "no signals", "rows": n_written}
+        n_written += got["rows"]
+        skipped.extend(got["skipped"])
+        lines.append(got["line"])
+    out: dict[str, Any] = {"line": "; ".join(lines) or "no signals", "rows": n_written}
     if skipped:
         out["skipped"] = skipped
     return out
+
+
+def _triangles(con: duckdb.DuckDBPyConnection, as_of: dt.date, run_id: str, signal: str,
+               cfg: dict[str, Any], firsts: dict[str, dt.date]
+               ) -> tuple[Triangle, Triangle | None] | None:
+    """The signal's triangle on as_of and (for the back-test) ``nowcast_backtest_days``
+    earlier, aligned to the same regions; None without data."""
+    D = int(cfg["max_delay_days"])
+    n_ref = max(int(cfg["nowcast_training_days"]), D + 7)
+    lag = int(cfg["nowcast_backtest_days"]) if cfg["nowcast_drift"] == "auto" else 0
+    since = as_of - dt.timedelta(days=n_ref - 1 + lag)
+    vint = vintages_as_of(con, as_of, since=since, signals=[signal])
+    vint = vint[vint["signal"] == signal]
+    if vint.empty:
+        return None
+    tail = cfg["nowcast_tail"] != "none" and cfg["nowcast_method"] == "glm"
+    tri = build_triangles(vint, as_of, D, n_ref, firsts, tail=tail)[signal]
+    _mask_backlog_rows(con, run_id, signal, tri)
+    then = None
+    if lag > 0:
+        before = as_of - dt.timedelta(days=lag)
+        old = vint[pd.to_datetime(vint["as_of"]).dt.date <= before]
+        got = build_triangles(old, before, D, n_ref, firsts, tail=tail).get(signal)
+        if got is not None and np.isfinite(got.cells).any():
+            _mask_backlog_rows(con, run_id, signal, got)
+            then = got.aligned(tri.regions)
+    return tri, then
+
+
+def _nowcast_signal(con: duckdb.DuckDBPyConnection, as_of: dt.date, run_id: str, signal: str,
+                    cfg: dict[str, Any], firsts: dict[str, dt.date], mapper: Mapper
+                    ) -> dict[str, Any] | None:
+    """Nowcast one signal: signal-level delay structure, batches, then the output tables."""
+    got = _triangles(con, as_of, run_id, signal, cfg, firsts)
+    if got is None:
+        return None
+    tri, then = got
+    history = None
+    if tri.tail:
+        history = tail_history(con, as_of, signal, int(cfg["max_delay_days"]),
+                               int(cfg["nowcast_tail_days"]), firsts.get(signal))
+    sig = _signal_delay(tri, then, cfg, history)
+    parts = batches(len(tri.regions), int(cfg["batch_regions"]))
+    jobs = [(tri.take(s), None if then is None else then.take(s), sig, cfg) for s in parts]
+    results = mapper(_fit_block, jobs)
+    good = [(s, r) for s, r in zip(parts, results, strict=True)
+            if not isinstance(r, BatchFailure)]
+    skipped = [f"{signal}/{x}: {r.message[:200]}" for s, r in zip(parts, results, strict=True)
+               if isinstance(r, BatchFailure) for x in tri.regions[s]]
+    if not good:
+        return {"rows": 0, "skipped": skipped, "line": f"{signal}: no region nowcast"}
+    keep_rows = np.concatenate([np.arange(len(tri.regions))[s] for s, _ in good])
+    tri = tri.take(keep_rows)
+    res = {k: np.concatenate([r[k] for _, r in good]) for k in ("pmf", "q", "draws", "pooling")}
+    summary = {k: np.concatenate([r["summary"][k] for _, r in good])
+               for k in good[0][1]["summary"]}
+    drift_dates = good[0][1]["drift"][1]
+    weekly = np.concatenate([r["drift"][0] for _, r in good])
+    rows = _write_outputs(con, run_id, signal, cfg, tri, res, summary, weekly, drift_dates, sig)
+    n_drift = int(np.sum(summary["model"] == "drifting"))
+    line = (f"{signal}: {len(tri.regions)} regions ({int(np.sum(res['pooling'] != 'own'))} "
+            f"pooled/shrunk, {n_drift} drifting delay)")
+    return {"rows": rows, "skipped": skipped, "line": line}
+
+
+def _write_outputs(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
+                   cfg: dict[str, Any], tri: Triangle, res: dict[str, np.ndarray],
+                   summary: dict[str, np.ndarray], weekly: np.ndarray, drift_dates: np.ndarray,
+                   sig: SignalDelay) -> int:
+    """Write one signal's delay pmf, drift, delay model, nowcast, fits and joint draws."""
+    D = int(cfg["max_delay_days"])
+    pmf, q, joint, pooling = res["pmf"], res["q"], res["draws"], res["pooling"]
+    n_reg = len(tri.regions)
+    n_ref = len(tri.dates)
+    # Too little history (e.g. the first snapshot of a feed): no delay distribution can be
+    # estimated; say so, publish no pmf, and let the nowcast equal what is reported.
+    usable = np.isfinite(pmf).all(axis=1) & (np.nansum(pmf, axis=1) > 0.5)
+    pooling = np.where(usable, pooling, "insufficient")
+    q = np.where(usable[:, None, None] & np.isfinite(q), q, tri.latest[..., None])
+    insert_df(con, "out.delay_pmf", pd.DataFrame({
+        "run_id": run_id, "region": np.repeat(tri.regions[usable], D + 1), "signal": signal,
+        "delay_days": np.tile(np.arange(D + 1), int(usable.sum())),
+        "prob": pmf[usable].reshape(-1)}))
+    w = len(drift_dates)
+    insert_df(con, "out.delay_drift", pd.DataFrame({
+        "run_id": run_id, "region": np.repeat(tri.regions, w), "signal": signal,
+        "week_start": np.tile(np.asarray(drift_dates, dtype="datetime64[D]"), n_reg),
+        "mean_delay_days": weekly.reshape(-1)}))
+    _write_delay_model(con, run_id, signal, cfg, tri, summary, usable, pmf, sig)
+    # out.nowcast: the last D+1 reference dates (older ones are complete)
+    keep = slice(n_ref - (D + 1), n_ref)
+    dates = tri.dates[keep]
+    reported = tri.latest[:, keep]
+    # the nowcast never goes below what is already reported (incl. reports after delay D)
+    qk = np.maximum(q[:, keep, :], reported[..., None])
+    k = len(NOWCAST_LEVELS)
+    t = len(dates)
+    joint = np.where(usable[:, None, None], joint, reported[..., None])
+    _write_draws(con, signal, tri.regions, dates, np.maximum(joint, reported[..., None]))
+    rows = insert_df(con, "out.nowcast", pd.DataFrame({
+        "run_id": run_id, "region": np.repeat(tri.regions, t * k), "signal": signal,
+        "ref_date": np.tile(np.repeat(dates, k), n_reg),
+        "reported": np.repeat(reported.reshape(-1), k),
+        "q_level": np.tile(NOWCAST_LEVELS, n_reg * t), "value": qk.reshape(-1)}))
+    insert_df(con, "out.fits", pd.DataFrame({
+        "run_id": run_id, "region": tri.regions, "model": "nowcast",
+        "params_json": [json.dumps({"pooling": str(p), "method": cfg["nowcast_method"],
+                                    "family": cfg["nowcast_family"], "delay_model": str(dm),
+                                    "mean_delay_days": float(md) if ok else None})
+                        for p, dm, md, ok in zip(pooling, summary["model"],
+                                                 summary["mean_today"], usable, strict=True)],
+        "objective": np.nan, "converged": usable,
+        "message": [f"delay distribution: {p}, {dm}" if ok else
+                    "too little reporting history to estimate delays; nowcast = reported"
+                    for p, dm, ok in zip(pooling, summary["model"], usable, strict=True)],
+        "signal": signal}))
+    return rows
+
+
+def _write_delay_model(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
+                       cfg: dict[str, Any], tri: Triangle, summary: dict[str, np.ndarray],
+                       usable: np.ndarray, pmf: np.ndarray, sig: SignalDelay) -> None:
+    """``out.delay_model`` (per region) and ``out.delay_signal`` (the signal's pooled view)."""
+    nan = np.where(usable, 1.0, np.nan)
+    insert_df(con, "out.delay_model", pd.DataFrame({
+        "run_id": run_id, "region": tri.regions, "signal": signal,
+        "delay_model": np.where(usable, summary["model"], "insufficient"),
+        "mean_delay_days": summary["mean_today"] * nan,
+        "mean_delay_before_days": summary["mean_before"] * nan,
+        "lookback_days": DRIFT_LOOKBACK_DAYS,
+        "tail_prob": summary["tail_prob"] * nan, "q99_delay_days": summary["q99"] * nan,
+        "backtest_gain": summary["gain"], "backtest_miss90": summary["miss90"],
+        "backtest_rows": summary["rows"].astype(np.int64),
+        "weekday_effect": sig.weekday_used, "n_holidays": len(sig.holidays)}))
+    pooled = sig.pooled.stationary if sig.pooled is not None else None
+    if pooled is not None and sig.pooled is not None and sig.pooled.drifting is not None \
+            and sig.agg_gain > float(cfg["nowcast_drift_margin"]):
+        pooled = sig.pooled.drifting
+    mean = q99 = tail_prob = np.nan
+    if pooled is not None and np.isfinite(pooled.delay_pmf_).all():
+        mean = float(pooled.mean_delay()[0])
+        q99 = float(pooled.delay_quantile(SETTLE_QUANTILE)[0])
+        tail_prob = float(pooled.delay_pmf_[0, -1]) if sig.tail_shape is not None else 0.0
+    insert_df(con, "out.delay_signal", pd.DataFrame({
+        "run_id": [run_id], "signal": [signal], "n_regions": [len(tri.regions)],
+        "n_drifting": [int(np.sum(summary["model"] == "drifting"))],
+        "weekday_effect": [sig.weekday_used], "weekday_test": [sig.weekday_stat],
+        "holidays": [json.dumps(sig.holidays)],
+        "tail_size": [np.nan if sig.tail_shape is None else sig.tail_shape[0]],
+        "tail_mean_days": [np.nan if sig.tail_shape is None else sig.tail_shape[1]],
+        "tail_prob": [tail_prob], "mean_delay_days": [mean], "q99_delay_days": [q99],
+        "backtest_gain": [sig.agg_gain]}))
 
 
 def _write_draws(con: duckdb.DuckDBPyConnection, signal: str, regions: np.ndarray,

@@ -29,6 +29,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
 from tallywave.pipeline.errors import UserError
+from tallywave.pipeline.report_delay import delay_alerts_html
 
 #: Days of history shown in the reported/nowcast and R_t panels.
 WINDOW_DAYS = 60
@@ -654,6 +655,7 @@ def write_report(con: duckdb.DuckDBPyConnection, *, as_of: dt.date | None = None
     actions, act_regions = _clean_actions(con, run_id)
     feeds = _feed_alerts(con, run_as_of)
     drift = _delay_drift(con, run_id)
+    delay_html, delay_warn = delay_alerts_html(con, run_id)
     acc = _accuracy(con)
 
     folder = Path(out_dir) / f"{run_as_of.isoformat()}_{re.sub(r'[^A-Za-z0-9._-]+', '_', run_id)}"
@@ -695,7 +697,7 @@ def write_report(con: duckdb.DuckDBPyConnection, *, as_of: dt.date | None = None
         fig_html.append('<p class="quiet">no data for any region in this run</p>')
 
     n_actions = int(actions["n"].sum()) if not actions.empty else 0
-    warn = " warn" if (n_actions or not feeds.empty or not drift.empty) else ""
+    warn = " warn" if (n_actions or not feeds.empty or not drift.empty or delay_warn) else ""
     page = f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8">
 <meta name="viewport" content="width=device-width, initial-scale=1">
@@ -722,7 +724,7 @@ intervals.</p>
 exceeds 1, then by how fast counts are changing.</p>
 {_growth_html(growth, set(fig_regions))}</section>
 <section class="block{warn}" id="quality"><h2>Data-quality alerts</h2>
-{_quality_html(actions, act_regions, feeds, drift, run_as_of)}</section>
+{_quality_html(actions, act_regions, feeds, drift, run_as_of)}{delay_html}</section>
 <section class="block" id="regions"><h2>Regions</h2>
 <p class="note">Per signal: (a) reported daily counts (bars) with the nowcast median and bands for
 the last {WINDOW_DAYS} days; (b) R<sub>t</sub> with the R = 1 line, amber shading marks days that

@@ -1,43 +1,120 @@
 """Stage 7 — scoring: every published forecast whose target has settled data, against the truth
 known now → ``out.scores``; views ``out.accuracy`` and ``out.accuracy_by_region``.
 
-Truth for (region, signal, target_date) is the latest vintage known on the scoring date; it
-counts as settled once the scoring date is at least ``settle_days`` after target_date.  Scores are
-a pure function of (published forecasts, observations known on the scoring date): each call
-recomputes them all in one transaction, so a revised truth is re-scored and ``truth_as_of`` says
-which data scored each row.  Mathematics and SQL: :mod:`tallywave.models.scores`.
+Truth for (region, signal, target_date), as known on the scoring date: the latest raw vintage
+(``truth_raw``) plus the repair the newest published run's cleaning made to that date
+(``core.cleaned``: value_clean - value_reported), i.e. the cleaned series as the models see it,
+kept up to date with revisions that arrived after that run (``truth_run_id`` names the run).  A
+target counts as settled once the scoring date is at least the signal's settle horizon after it:
+with ``settle_rule = "delay"`` the longer of ``settle_days`` and the 99th percentile of the
+signal's delay distribution published by that run (``out.delay_signal``), at most
+``settle_max_days``; else ``settle_days`` (``out.scores.settle_days`` records it).  Scores are a pure function of (published forecasts,
+data known on the scoring date): each call recomputes them all in one transaction, so a revised
+truth is re-scored and ``truth_as_of`` says which data scored each row.  Mathematics:
+:mod:`tallywave.models.scores`; its SQL: :mod:`tallywave.pipeline.scores_sql`.
 """
 
 from __future__ import annotations
 
 import datetime as dt
+import math
 from typing import Any
 
 import duckdb
 import pandas as pd
 
-from tallywave.models.scores import score_sql
+from tallywave.pipeline.scores_sql import score_sql
 from tallywave.pipeline.settings import Settings
 from tallywave.pipeline.store import transaction
 
+#: Columns of ``out.scores`` filled by the stage (run_id and scored_at are set around them).
+SCORE_COLUMNS = ("issued_on", "model", "region", "signal", "target_date", "horizon_days",
+                 "truth", "truth_as_of", "wis", "dispersion", "overprediction",
+                 "underprediction", "abs_error", "covered_50", "covered_90", "pit", "bias",
+                 "truth_raw", "truth_run_id", "settle_days", "wis_log", "pit_low", "pit_high",
+                 "cover_frac_50", "cover_frac_90")
+
+
+def truth_run(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> str | None:
+    """The newest run published for an as-of date on or before ``as_of``."""
+    row = con.execute("SELECT run_id FROM out.runs WHERE status = 'published' AND as_of <= ? "
+                      "ORDER BY as_of DESC, finished_at DESC LIMIT 1", [as_of]).fetchall()
+    return row[0][0] if row else None
+
+
+def settle_horizons(con: duckdb.DuckDBPyConnection, run_id: str | None,
+                    settings: Settings) -> dict[str, int]:
+    """Days after its target date a signal's truth counts as settled (see the module notes);
+    signals the run says nothing about use ``settle_days``."""
+    out: dict[str, int] = {}
+    signals = [r[0] for r in con.execute("SELECT DISTINCT signal FROM out.forecasts").fetchall()]
+    q99: dict[str, float] = {}
+    if run_id is not None:
+        q99 = {str(s): float(v) for s, v in con.execute(
+            "SELECT signal, q99_delay_days FROM out.delay_signal WHERE run_id = ? "
+            "AND q99_delay_days IS NOT NULL", [run_id]).fetchall()}
+    for signal in signals:
+        floor = int(settings.get("settle_days", signal))
+        if settings.get("settle_rule", signal) == "delay" and signal in q99 \
+                and math.isfinite(q99[signal]):
+            cap = max(floor, int(settings.get("settle_max_days", signal)))
+            out[signal] = min(max(floor, math.ceil(q99[signal])), cap)
+        else:
+            out[signal] = floor
+    return out
+
 
 def _stage_scoring_inputs(con: duckdb.DuckDBPyConnection, as_of: dt.date,
-                          settings: Settings) -> dt.date:
-    """Temp tables ``_truth`` (settled truth known on ``as_of``) and ``_published`` (published
-    forecasts issued by then whose target has settled); returns the settle cutoff date."""
-    settle = int(settings.get("settle_days"))
-    cutoff = as_of - dt.timedelta(days=settle)
+                          settings: Settings) -> dict[str, int]:
+    """Temp tables ``_settle`` (signal, settle_days), ``_truth`` (settled truth known on
+    ``as_of``: cleaned and raw) and ``_published`` (published forecasts issued by then whose
+    target has settled); returns the settle horizon per signal."""
+    run_id = truth_run(con, as_of)
+    settle = settle_horizons(con, run_id, settings)
+    con.execute("CREATE OR REPLACE TEMP TABLE _settle (signal VARCHAR, settle_days INTEGER)")
+    if settle:
+        con.executemany("INSERT INTO _settle VALUES (?, ?)", list(settle.items()))
     con.execute(
-        "CREATE OR REPLACE TEMP TABLE _truth AS "
-        "SELECT region, signal, ref_date AS target_date, arg_max(value, as_of) AS truth "
-        "FROM core.observations WHERE as_of <= ? AND ref_date <= ? "
-        "GROUP BY region, signal, ref_date", [as_of, cutoff])
+        """CREATE OR REPLACE TEMP TABLE _truth AS
+           WITH raw AS (
+               SELECT o.region, o.signal, o.ref_date AS target_date,
+                      arg_max(o.value, o.as_of) AS truth_raw
+               FROM core.observations o JOIN _settle s USING (signal)
+               WHERE o.as_of <= ? AND o.ref_date <= ?::DATE - s.settle_days
+               GROUP BY ALL),
+           repair AS (
+               SELECT region, signal, ref_date AS target_date,
+                      value_clean - coalesce(value_reported, value_clean) AS delta
+               FROM core.cleaned WHERE run_id = ?)
+           SELECT r.region, r.signal, r.target_date,
+                  r.truth_raw + coalesce(c.delta, 0.0) AS truth, r.truth_raw,
+                  CASE WHEN c.delta IS NULL THEN NULL ELSE ?::VARCHAR END AS truth_run_id,
+                  s.settle_days
+           FROM raw r JOIN _settle s USING (signal)
+           LEFT JOIN repair c USING (region, signal, target_date)""",
+        [as_of, as_of, run_id, run_id])
     con.execute(
         "CREATE OR REPLACE TEMP TABLE _published AS "
         "SELECT f.* FROM out.forecasts f JOIN out.runs r USING (run_id) "
-        "WHERE r.status = 'published' AND f.issued_on <= ? AND f.target_date <= ?",
-        [as_of, cutoff])
-    return cutoff
+        "JOIN _settle s ON s.signal = f.signal "
+        "WHERE r.status = 'published' AND f.issued_on <= ? "
+        "AND f.target_date <= ?::DATE - s.settle_days",
+        [as_of, as_of])
+    return settle
+
+
+def _drop_inputs(con: duckdb.DuckDBPyConnection) -> None:
+    for name in ("_truth", "_published", "_settle"):
+        con.execute(f"DROP TABLE IF EXISTS {name}")
+
+
+def _scores_select() -> str:
+    """SELECT of the ``out.scores`` columns from the scoring SQL over the temp tables."""
+    extra = ("truth_raw", "truth_run_id", "settle_days")
+    cols = ", ".join(c if c != "truth_as_of" else "?::DATE AS truth_as_of"
+                     for c in SCORE_COLUMNS)
+    return (f"SELECT {cols} FROM ({score_sql('_published', '_truth', extra_truth_columns=extra)})"
+            " WHERE levels_ok")
 
 
 def scores_as_of(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings
@@ -47,15 +124,9 @@ def scores_as_of(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Setti
     so e.g. ensemble weights for a backfilled date equal what would have been published then."""
     _stage_scoring_inputs(con, as_of, settings)
     try:
-        return con.execute(
-            f"""SELECT issued_on, model, region, signal, target_date, horizon_days, truth,
-                       ?::DATE AS truth_as_of, wis, dispersion, overprediction,
-                       underprediction, abs_error, covered_50, covered_90, pit, bias
-                FROM ({score_sql('_published', '_truth')}) WHERE levels_ok""",
-            [as_of]).df()
+        return con.execute(_scores_select(), [as_of]).df()
     finally:
-        con.execute("DROP TABLE IF EXISTS _truth")
-        con.execute("DROP TABLE IF EXISTS _published")
+        _drop_inputs(con)
 
 
 def score(con: duckdb.DuckDBPyConnection, as_of: dt.date | None, settings: Settings
@@ -66,20 +137,17 @@ def score(con: duckdb.DuckDBPyConnection, as_of: dt.date | None, settings: Setti
         if as_of is None:
             return {"line": "nothing to score (no observations)", "rows": 0}
     with transaction(con):
-        cutoff = _stage_scoring_inputs(con, as_of, settings)
+        settle = _stage_scoring_inputs(con, as_of, settings)
         con.execute("DELETE FROM out.scores")
-        con.execute(
-            f"""INSERT INTO out.scores
-            SELECT NULL AS run_id, issued_on, model, region, signal, target_date, horizon_days,
-                   truth, ?::DATE AS truth_as_of, wis, dispersion, overprediction,
-                   underprediction, abs_error, covered_50, covered_90, pit, bias,
-                   now() AS scored_at
-            FROM ({score_sql('_published', '_truth')}) WHERE levels_ok""", [as_of])
+        cols = ", ".join(SCORE_COLUMNS)
+        con.execute(f"INSERT INTO out.scores ({cols}, scored_at) "
+                    f"SELECT *, now() FROM ({_scores_select()})", [as_of])
         con.execute("""UPDATE out.scores s SET run_id = p.run_id FROM (
                            SELECT DISTINCT run_id, issued_on FROM _published) p
                        WHERE s.issued_on = p.issued_on""")
         n = con.execute("SELECT count(*) FROM out.scores").fetchall()[0][0]
-        con.execute("DROP TABLE _truth")
-        con.execute("DROP TABLE _published")
+        _drop_inputs(con)
+    horizons = ", ".join(f"{s} {d} d" for s, d in sorted(settle.items()))
     return {"line": f"{n} forecasts scored against data known on {as_of} "
-                    f"(targets up to {cutoff})", "rows": int(n), "truth_as_of": as_of}
+                    f"(settled after: {horizons or 'nothing to score'})", "rows": int(n),
+            "truth_as_of": as_of}

@@ -8,6 +8,7 @@ never silently falls back to a default.
 from __future__ import annotations
 
 import copy
+import datetime as dt
 import json
 import sys
 import tomllib
@@ -36,7 +37,27 @@ SPEC: dict[str, Setting] = {
     "nowcast_method": Setting("glm", "`glm` (log-linear count model, intervals) or "
                               "`chain_ladder`", ("glm", "chain_ladder")),
     "nowcast_family": Setting("negbin", "noise of the unreported cells", ("negbin", "poisson")),
-    "nowcast_weekday_effect": Setting(False, "report-weekday effect in the count model"),
+    "nowcast_weekday_effect": Setting(True, "report-weekday effects in the count model, kept "
+                                      "for a signal where a quasi-likelihood ratio test on its "
+                                      "summed triangle supports them (p < 0.001)"),
+    "nowcast_holidays": Setting([], "report dates on which nothing is reported (`YYYY-MM-DD`); "
+                                "they get their own report-day effect, and closures seen in the "
+                                "data (nothing reported on a usually busy weekday) are added"),
+    "nowcast_tail": Setting("negbin", "reports later than `max_delay_days` form a \"≥ D\" "
+                            "bin whose tail is negative binomial (`negbin`) or geometric, fitted "
+                            "on the signal's summed triangle and nowcast; `none`: ignored",
+                            ("negbin", "geometric", "none")),
+    "nowcast_tail_days": Setting(180, "reference dates of history behind the tail's shape (a "
+                                 "tail is seen only by dates older than `max_delay_days`)"),
+    "nowcast_drift": Setting("auto", "delay that changes over time: `auto` (per region, when it "
+                             "would have nowcast the last `nowcast_backtest_days` better), "
+                             "`on`, `off`", ("auto", "on", "off")),
+    "nowcast_drift_sd": Setting(0.05, "drifting delay: random-walk sd per week of the tilt "
+                                "log(q(d+1)/q(d)) of the delay distribution"),
+    "nowcast_backtest_days": Setting(7, "days back the drift choice re-runs the nowcast and "
+                                     "scores it on what has arrived since"),
+    "nowcast_drift_margin": Setting(1.0, "log-score gain the drifting delay must show in that "
+                                    "back-test to be chosen"),
     "nowcast_training_days": Setting(60, "reference dates used to estimate the delay "
                                      "distribution"),
     "nowcast_pool_below": Setting(200.0, "a region with fewer events in its triangle is shrunk "
@@ -96,7 +117,14 @@ SPEC: dict[str, Setting] = {
     "ensemble_method": Setting("median", "how quantiles are combined across models",
                                ("median", "mean")),
     # ---- scoring ----
-    "settle_days": Setting(14, "truth counts as settled this many days after the target date"),
+    "settle_days": Setting(14, "truth counts as settled this many days after the target date "
+                           "(with `settle_rule = \"delay\"` the least: a signal whose 99th "
+                           "percentile delay is longer waits that long)"),
+    "settle_rule": Setting("delay", "`delay`: per signal, the longer of `settle_days` and the "
+                           "99th percentile of its published delay distribution; `fixed`: "
+                           "`settle_days`", ("delay", "fixed")),
+    "settle_max_days": Setting(90, "`settle_rule = \"delay\"` never waits longer than this (a "
+                               "long, uncertain delay tail would otherwise keep truth unsettled)"),
     # ---- run ----
     "seed": Setting(20260302, "random seed: runs are reproducible"),
     "batch_regions": Setting(250, "regions per parallel task (never changes the results)"),
@@ -184,6 +212,8 @@ def _check_value(key: str, value: Any, where: str) -> Any:
                 "or {candidates = [[mean, sd], ...]}"
             )
         return value
+    if key == "nowcast_holidays":
+        return _holiday_list(value, where)
     if isinstance(default, bool):
         if not isinstance(value, bool):
             raise UserError(f"{where}: {key} must be true or false, got {value!r}")
@@ -219,6 +249,21 @@ def _check_value(key: str, value: Any, where: str) -> Any:
     if choices is not None and value not in choices:
         raise UserError(f"{where}: {key} = {value!r} is not one of {', '.join(choices)}")
     return value
+
+
+def _holiday_list(value: Any, where: str) -> list[str]:
+    """A list of dates (TOML dates or `YYYY-MM-DD` text) as ISO strings."""
+    if not isinstance(value, list):
+        raise UserError(f"{where}: nowcast_holidays must be a list of dates, got {value!r}")
+    out = []
+    for item in value:
+        text = item.isoformat()[:10] if isinstance(item, dt.date) else str(item)
+        try:
+            out.append(dt.date.fromisoformat(text).isoformat())
+        except ValueError:
+            raise UserError(f"{where}: nowcast_holidays has {item!r}, which is not a date "
+                            "(YYYY-MM-DD)") from None
+    return out
 
 
 def load_settings(path: str | Path | None = None) -> Settings:

@@ -19,20 +19,26 @@ totals stay full totals).  File names carry the as_of date.  The maths lives in 
 
 from __future__ import annotations
 
-import argparse
 import datetime as dt
 import json
-import sys
 import time
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from tallywave.models.outbreak import cumulative_vintage, simulate_outbreak, vintage
+from tallywave.models.outbreak import (
+    SCENARIOS,
+    OutbreakScenario,
+    cumulative_vintage,
+    reporting_scenario,
+    simulate_outbreak,
+    vintage,
+)
 
-__all__ = ["FEEDS_TOML", "write_scenario"]
+__all__ = ["FEEDS_TOML", "SCENARIOS", "observations_frame", "write_scenario"]
 
 FEEDS_TOML = """\
 # Feed spec of the invented demo province (written by pipeline/simulate.py).
@@ -114,10 +120,13 @@ def write_scenario(
     window: int = 42,
     seed: int = 20260302,
     start: str | dt.date = "2026-03-02",
+    scenario: str = "default",
 ) -> dict:
     """Simulate the invented province and write feed snapshots, feeds.toml and truth/ to out_dir.
 
-    Earlier output of this writer in out_dir is replaced.  Returns a summary: files, rows, bytes.
+    ``scenario`` names the reporting process (:data:`SCENARIOS`: drifting delays, weekend and
+    holiday closures of reporting, long-tailed delays); the default is the demo's.  Earlier output
+    of this writer in out_dir is replaced.  Returns a summary: files, rows, bytes.
     """
     t0 = time.perf_counter()
     start_date = dt.date.fromisoformat(str(start))
@@ -126,8 +135,10 @@ def write_scenario(
         (out / sub).mkdir(parents=True, exist_ok=True)
     _clear_previous(out)
 
+    reporting = reporting_scenario(scenario, n_days, start_date.weekday())
     sc = simulate_outbreak(n_regions=n_regions, n_days=n_days, n_snapshots=n_snapshots,
-                           window=window, seed=seed, first_weekday=start_date.weekday())
+                           window=window, seed=seed, first_weekday=start_date.weekday(),
+                           reporting=reporting)
     days = np.datetime64(start_date, "D") + np.arange(n_days)
     day_str = days.astype(str).astype(_STR)
     names = np.asarray(sc.names, dtype=_STR)
@@ -180,7 +191,7 @@ def write_scenario(
     feed_bytes += _write(out / "regions.csv", "district,population\n" + "".join(
         f"{name},{int(pop)}\n" for name, pop in zip(sc.names, sc.populations, strict=True)))
     files.append("regions.csv")
-    truth_rows = _write_truth(out / "truth", sc, days, start_date)
+    truth_rows = _write_truth(out / "truth", sc, days, start_date, scenario)
     files += [f"truth/{name}" for name in _TRUTH_FILES]
     rows.update(truth_rows)
     total_bytes = sum((out / f).stat().st_size for f in files)
@@ -197,7 +208,8 @@ def write_scenario(
     }
 
 
-def _write_truth(truth: Path, sc, days: np.ndarray, start_date: dt.date) -> dict[str, int]:
+def _write_truth(truth: Path, sc: OutbreakScenario, days: np.ndarray, start_date: dt.date,
+                 scenario: str = "default") -> dict[str, int]:
     """Write the truth tables (Parquet) and scenario.json; return row counts."""
     n_regions, n_days = len(sc.names), len(days)
     region_col = np.repeat(np.asarray(sc.names, dtype=object), n_days)
@@ -239,12 +251,14 @@ def _write_truth(truth: Path, sc, days: np.ndarray, start_date: dt.date) -> dict
         "detail": pa.array([a["detail"] for a in art], type=pa.string()),
     }), truth / "artefacts.parquet")
 
-    scenario = {
+    info: dict[str, object] = {
         "description": "Invented province 'Varethmoor' and an invented respiratory outbreak; "
                        "every name and number is fictional.",
         "start": start_date.isoformat(),
         "end": str(days[-1]),
         "seed": sc.parameters["seed"],
+        **({} if scenario == "default" else {"scenario": scenario,
+                                            "scenario_description": SCENARIOS[scenario]}),
         "parameters": sc.parameters,
         "districts": [{"name": nm, "population": int(p), "seeded_exposed": int(s)}
                       for nm, p, s in zip(sc.names, sc.populations, sc.seeds, strict=True)],
@@ -258,32 +272,48 @@ def _write_truth(truth: Path, sc, days: np.ndarray, start_date: dt.date) -> dict
         "artefacts": [{**a, "region": sc.names[a["region"]], "ref_date": str(days[a["day"]])}
                       for a in art],
     }
-    (truth / "scenario.json").write_text(json.dumps(scenario, indent=2, sort_keys=True) + "\n",
+    (truth / "scenario.json").write_text(json.dumps(info, indent=2, sort_keys=True) + "\n",
                                          encoding="utf-8")
     return {"truth/infections": n_regions * n_days,
             "truth/final_counts": n_regions * n_days * len(signals),
             "truth/delay_pmf": len(pmf_sig), "truth/artefacts": len(art)}
 
 
-def main(argv: list[str] | None = None) -> int:
-    """Command-line helper: ``python -m pipeline.simulate OUT_DIR [--n-regions N ...]``."""
-    ap = argparse.ArgumentParser(description="write an invented outbreak scenario")
-    ap.add_argument("out_dir")
-    ap.add_argument("--n-regions", type=int, default=10)
-    ap.add_argument("--n-days", type=int, default=200)
-    ap.add_argument("--n-snapshots", type=int, default=60)
-    ap.add_argument("--window", type=int, default=42)
-    ap.add_argument("--seed", type=int, default=20260302)
-    ap.add_argument("--start", default="2026-03-02")
-    ns = ap.parse_args(argv)
-    summary = write_scenario(ns.out_dir, n_regions=ns.n_regions, n_days=ns.n_days,
-                             n_snapshots=ns.n_snapshots, window=ns.window, seed=ns.seed,
-                             start=ns.start)
-    summary.pop("files")
-    json.dump(summary, sys.stdout, indent=2)
-    print()
-    return 0
+def observations_frame(sc: OutbreakScenario, start: str | dt.date = "2026-03-02", *,
+                       first_as_of: int = 0, last_as_of: int | None = None,
+                       clean: bool = True) -> pd.DataFrame:
+    """The ``core.observations`` rows a feed of the scenario would produce, built directly from
+    its triangles (no files, no ingest): one row per (region, signal, ref_date) and as_of day on
+    which the reported daily value changed, for as_of days ``first_as_of .. last_as_of``.
 
-
-if __name__ == "__main__":
-    raise SystemExit(main())
+    Every reference date stays visible at every delay (no snapshot window), so reports however
+    late reach the vintages.  ``clean`` uses the triangles without the injected artefacts.
+    For trials of the nowcast against truth (``sc.triangles[signal].sum(axis=2)``).
+    """
+    day0 = np.datetime64(dt.date.fromisoformat(str(start)), "D")
+    tris = sc.triangles if clean else sc.published
+    frames = []
+    for signal, tri in tris.items():
+        n_r, n_t, k = tri.shape
+        last = n_t - 1 if last_as_of is None else int(last_as_of)
+        cum = np.cumsum(tri, axis=2)
+        t = np.arange(n_t)[:, None]
+        d = np.arange(k)[None, :]
+        u = t + d  # report day of each cell
+        # the first as_of sees every earlier reference date with its value known then
+        first_cell = (u == np.maximum(t, first_as_of))
+        changed = (tri != 0) | first_cell[None]
+        keep = changed & ((u >= first_as_of) & (u <= last))[None]
+        r_i, t_i, d_i = np.nonzero(keep)
+        names = np.asarray(sc.names, dtype=object)
+        frames.append(pd.DataFrame({
+            "region": names[r_i], "signal": signal, "ref_date": day0 + t_i,
+            "as_of": day0 + t_i + d_i, "value": cum[r_i, t_i, d_i].astype(float)}))
+        old = np.arange(max(0, min(first_as_of - k + 1, n_t)))  # complete before first_as_of
+        if old.size:
+            r_o, t_o = np.meshgrid(np.arange(n_r), old, indexing="ij")
+            frames.append(pd.DataFrame({
+                "region": names[r_o.ravel()], "signal": signal, "ref_date": day0 + t_o.ravel(),
+                "as_of": np.full(r_o.size, day0 + first_as_of),
+                "value": cum[r_o.ravel(), t_o.ravel(), -1].astype(float)}))
+    return pd.concat(frames, ignore_index=True)

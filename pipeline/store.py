@@ -132,8 +132,33 @@ _V3 = [
     "ALTER TABLE out.growth ADD COLUMN IF NOT EXISTS date_basis VARCHAR",
 ]
 
+#: Version 4: the delay model per region and per signal (drift, tail, back-test, settle
+#: horizon); scores for counts (raw truth beside the cleaned one, log-scale WIS, PIT range,
+#: tie-corrected coverage, the settle horizon used).
+_V4 = [
+    """CREATE TABLE IF NOT EXISTS out.delay_model (
+        run_id VARCHAR NOT NULL, region VARCHAR NOT NULL, signal VARCHAR NOT NULL,
+        delay_model VARCHAR NOT NULL, mean_delay_days DOUBLE, mean_delay_before_days DOUBLE,
+        lookback_days INTEGER, tail_prob DOUBLE, q99_delay_days DOUBLE, backtest_gain DOUBLE,
+        backtest_miss90 DOUBLE, backtest_rows BIGINT, weekday_effect BOOLEAN,
+        n_holidays INTEGER)""",
+    """CREATE TABLE IF NOT EXISTS out.delay_signal (
+        run_id VARCHAR NOT NULL, signal VARCHAR NOT NULL, n_regions INTEGER, n_drifting INTEGER,
+        weekday_effect BOOLEAN, weekday_test DOUBLE, holidays VARCHAR, tail_size DOUBLE,
+        tail_mean_days DOUBLE, tail_prob DOUBLE, mean_delay_days DOUBLE, q99_delay_days DOUBLE,
+        backtest_gain DOUBLE)""",
+    "ALTER TABLE out.scores ADD COLUMN IF NOT EXISTS truth_raw DOUBLE",
+    "ALTER TABLE out.scores ADD COLUMN IF NOT EXISTS truth_run_id VARCHAR",
+    "ALTER TABLE out.scores ADD COLUMN IF NOT EXISTS settle_days INTEGER",
+    "ALTER TABLE out.scores ADD COLUMN IF NOT EXISTS wis_log DOUBLE",
+    "ALTER TABLE out.scores ADD COLUMN IF NOT EXISTS pit_low DOUBLE",
+    "ALTER TABLE out.scores ADD COLUMN IF NOT EXISTS pit_high DOUBLE",
+    "ALTER TABLE out.scores ADD COLUMN IF NOT EXISTS cover_frac_50 DOUBLE",
+    "ALTER TABLE out.scores ADD COLUMN IF NOT EXISTS cover_frac_90 DOUBLE",
+]
+
 #: Forward migrations: (version, statements).  Append new steps; never edit a shipped one.
-MIGRATIONS: list[tuple[int, list[str]]] = [(1, _V1), (2, _V2), (3, _V3)]
+MIGRATIONS: list[tuple[int, list[str]]] = [(1, _V1), (2, _V2), (3, _V3), (4, _V4)]
 SCHEMA_VERSION = MIGRATIONS[-1][0]
 
 

@@ -7,15 +7,22 @@ import pytest
 import statsmodels.api as sm
 from scipy import stats
 
+from tallywave.models.base import series_seeds
 from tallywave.models.delay import (
     ChainLadder,
     DelayGLM,
     DelayNowcaster,
+    PooledDelay,
+    backtest_arrivals,
+    closed_report_days,
     cumulative_to_incremental,
+    fit_tail,
+    fold_tail,
     incremental_to_cumulative,
     mean_delay_by_week,
     simulate_triangle,
     total_variation,
+    weekday_lr_test,
 )
 
 # Taylor & Ashe (1983) cumulative run-off triangle, 10 accident years;
@@ -166,7 +173,7 @@ def sim() -> dict:
     level = rng.uniform(30, 300, S_SIM)[:, None] * np.exp(0.02 * np.arange(T_SIM))[None, :]
     full, obs = simulate_triangle(level, pmf[None], PHI_SIM, rng)
     nc = DelayNowcaster(model=DelayGLM(family="negbin")).fit(obs)
-    q = nc.quantiles(Q_LEVELS, n_draws=500, rng=rng)
+    q = nc.quantiles(Q_LEVELS, n_draws=500)
     return {"pmf": pmf, "full": full, "obs": obs, "nc": nc, "q": q, "final": full.sum(axis=2)}
 
 
@@ -205,7 +212,7 @@ def test_simulated_truth_nowcast_calibration_and_accuracy(sim: dict) -> None:
 
 def test_sample_shape_and_mean(sim: dict) -> None:
     nc = sim["nc"]
-    draws = nc.sample(400, np.random.default_rng(5))
+    draws = nc.sample(400)
     assert draws.shape == (400, S_SIM, T_SIM)
     assert np.all(draws >= nc.reported_[None] - 1e-9)
     last = slice(T_SIM - 14, T_SIM)
@@ -215,7 +222,7 @@ def test_sample_shape_and_mean(sim: dict) -> None:
 
 def test_chain_ladder_drives_the_nowcaster(sim: dict) -> None:
     nc = DelayNowcaster(model=ChainLadder()).fit(sim["obs"])
-    q = nc.quantiles([0.05, 0.5, 0.95], n_draws=300, rng=np.random.default_rng(2))
+    q = nc.quantiles([0.05, 0.5, 0.95], n_draws=300)
     assert 0.80 <= _coverage(q, sim["final"], 0, 2, slice(T_SIM - 14, T_SIM)) <= 0.97
 
 
@@ -234,12 +241,12 @@ def test_weekday_effect_recovered_and_useful() -> None:
     # simulated truth: report-weekday multipliers (mean 1) and the base delay pmf
     np.testing.assert_allclose(with_wk.model_.weekday_effect_.mean(axis=0), g_true, atol=0.02)
     assert total_variation(with_wk.model_.base_pmf_, pmf).mean() < 0.035
-    q = with_wk.quantiles([0.05, 0.5, 0.95], n_draws=400, rng=rng)
+    q = with_wk.quantiles([0.05, 0.5, 0.95], n_draws=400)
     assert 0.80 <= _coverage(q, final, 0, 2, last) <= 0.97
     mae_wk = np.abs(q[:, last, 1] - final[:, last]).mean()
     assert mae_wk <= 0.5 * np.abs(with_wk.reported_[:, last] - final[:, last]).mean()
     without = DelayNowcaster(model=DelayGLM(weekday_effect=False)).fit(obs)
-    q0 = without.quantiles([0.5], n_draws=400, rng=rng)
+    q0 = without.quantiles([0.5], n_draws=400)
     assert mae_wk < np.abs(q0[:, last, 0] - final[:, last]).mean()
 
 
@@ -290,7 +297,7 @@ def test_poisson_nowcast_matches_gamma_poisson_closed_form() -> None:
     rate = frac + nc.prior_shape / nc.prior_level_[0]
     size, p = count + nc.prior_shape, rate / (rate + miss)
     assert size * (1 - p) / p < 50  # exact gamma-Poisson branch of the sampler
-    y = nc.sample(20000, rng)[:, 0, t] - nc.reported_[0, t]
+    y = nc.sample(20000)[:, 0, t] - nc.reported_[0, t]
     grid = np.arange(0, int(np.quantile(y, 0.99)) + 1)
     ecdf = (y[:, None] <= grid[None, :]).mean(axis=0)
     assert np.abs(ecdf - stats.nbinom.cdf(grid, size, p)).max() < 0.015
@@ -307,15 +314,15 @@ def test_pmf_uncertainty_matches_spread_across_replicates() -> None:
     _, obs = simulate_triangle(np.full((300, 60), 100.0), _gamma_pmf(6.0), 0.1, rng)
     nc = DelayNowcaster(model=DelayGLM(pool_below=0, pool_fully_below=0)).fit(obs)
     empirical = np.log(np.cumsum(nc.model_.base_pmf_, axis=1)).var(axis=0)
-    draws = nc.draw_delay_pmf(1000, rng)
+    draws = nc.draw_delay_pmf(1000)
     predicted = np.log(np.cumsum(draws, axis=2)).var(axis=0).mean(axis=0)
     ratio = empirical[:10] / predicted[:10]
     assert np.all((ratio > 0.75) & (ratio < 1.33))
     # switching parameter uncertainty off narrows the intervals of the latest rows
     off = DelayNowcaster(model=DelayGLM(pool_below=0, pool_fully_below=0),
                          parameter_uncertainty=False).fit(obs)
-    width_on = np.diff(nc.quantiles([0.05, 0.95], 400, np.random.default_rng(1)), axis=2)
-    width_off = np.diff(off.quantiles([0.05, 0.95], 400, np.random.default_rng(1)), axis=2)
+    width_on = np.diff(nc.quantiles([0.05, 0.95], 400), axis=2)
+    width_off = np.diff(off.quantiles([0.05, 0.95], 400), axis=2)
     assert width_on[:, -5:].mean() > width_off[:, -5:].mean()
 
 
@@ -352,8 +359,7 @@ def test_holes_are_predicted_unless_reported_totals_are_given() -> None:
     np.testing.assert_allclose(m2.reported_, current)
     np.testing.assert_allclose(
         m2.expected_total_, current + (m2.expected_ * future[None]).sum(axis=2))
-    q = DelayNowcaster().fit(obs, reported=current).quantiles([0.1, 0.9], 200,
-                                                               np.random.default_rng(0))
+    q = DelayNowcaster().fit(obs, reported=current).quantiles([0.1, 0.9], 200)
     assert np.all(q >= current[:, :, None])
 
 
@@ -365,7 +371,7 @@ def test_rows_without_observed_mass_get_prior_based_nowcast() -> None:
     _, obs = simulate_triangle(np.full((3, 40), 50.0), pmf, 0.0, rng)
     nc = DelayNowcaster().fit(obs)
     assert np.isnan(nc.model_.expected_total_[:, -1]).all()
-    q = nc.quantiles([0.05, 0.5, 0.95], 400, rng)
+    q = nc.quantiles([0.05, 0.5, 0.95], 400)
     assert np.isfinite(q).all()
     # prior centred on the recent level (about 50 per day): the 90% interval contains it
     assert np.all((q[:, -1, 0] < 50) & (q[:, -1, 2] > 50))
@@ -420,3 +426,177 @@ def test_simulate_triangle_moments_and_mask() -> None:
     future = (np.arange(30)[:, None] + np.arange(11)[None, :]) > 29
     np.testing.assert_array_equal(np.isnan(obs), np.broadcast_to(future, obs.shape))
     np.testing.assert_array_equal(obs[:, ~future], full[:, ~future])
+
+
+# --------------------------------------------------------------------------- drift, tail, days
+
+
+def _observed_as_of(full: np.ndarray, last_row: int) -> np.ndarray:
+    """The triangle of rows 0..last_row as seen on that row's date (future cells NaN)."""
+    sub = full[:, : last_row + 1].astype(float)
+    n_ref, k = sub.shape[1:]
+    future = (np.arange(n_ref)[:, None] + np.arange(k)[None, :]) > n_ref - 1
+    return np.where(future[None], np.nan, sub)
+
+
+@pytest.fixture(scope="module")
+def drifting() -> dict:
+    """150 regions whose delay slows from gamma mean 3 to 6 (fixed shape 2) over rows 10..45."""
+    rng = np.random.default_rng(77)
+    n_ref = 60
+    means = 3.0 * 2.0 ** np.clip((np.arange(n_ref) - 10) / 35, 0, 1)
+    pmf_rows = np.stack([_gamma_pmf(m) for m in means])
+    level = rng.uniform(80, 300, (150, 1)) * np.ones((1, n_ref))
+    full, obs = simulate_triangle(level, pmf_rows[None], 0.05, rng)
+    return {"pmf_rows": pmf_rows, "full": full, "obs": obs, "final": full.sum(axis=2)}
+
+
+def test_drifting_delay_is_recovered_and_keeps_the_nowcast_calibrated(drifting) -> None:
+    obs, final, truth = drifting["obs"], drifting["final"], drifting["pmf_rows"]
+    last = slice(60 - 14, 60)
+    res = {}
+    for drift in (False, True):
+        nc = DelayNowcaster(model=DelayGLM(drift=drift, pool_below=0, pool_fully_below=0),
+                            random_state=5).fit(obs)
+        q = nc.quantiles([0.05, 0.5, 0.95], 400)
+        res[drift] = (nc, _coverage(q, final, 0, 2, last),
+                      np.median(np.log((q[:, last, 1] + 1) / (final[:, last] + 1))))
+    nc = res[True][0]
+    # simulated truth: today's pmf is the newest row's; the stationary fit mixes old and new
+    assert total_variation(nc.delay_pmf_, truth[-1]).mean() < 0.06
+    assert np.median(nc.model_.mean_delay()) == pytest.approx(truth[-1] @ np.arange(29), abs=0.3)
+    assert 0.80 <= res[True][1] <= 0.97 and abs(res[True][2]) < 0.05
+    assert res[False][1] < 0.6 and res[False][2] < -0.05  # too low without drift
+
+
+def test_tilt_of_a_rescaled_gamma_delay() -> None:
+    # A gamma density of fixed shape k rescaled from theta1 to theta2 changes by the factor
+    # exp(x (1/theta1 - 1/theta2)) (ratio of gamma densities; from memory) — an exponential
+    # tilt, which the drift effect models; for the discretised pmf nearly so.  Step change at
+    # row 25: the oldest block's tilt relative to today's should be 1/theta2 - 1/theta1.
+    rng = np.random.default_rng(3)
+    n_ref, shape = 60, 2.0
+    theta1, theta2 = 2.0, 3.0
+    rows = np.stack([_gamma_pmf(shape * (theta1 if t < 25 else theta2), shape)
+                     for t in range(n_ref)])
+    _, obs = simulate_triangle(np.full((40, n_ref), 2000.0), rows[None], 0.0, rng)
+    m = DelayGLM(family="poisson", drift=True, drift_sd=1.0, pool_below=0,
+                 pool_fully_below=0).fit(obs)
+    oldest = np.median(m.tilt_[:, 0])
+    assert oldest == pytest.approx(1 / theta2 - 1 / theta1, abs=0.03)
+    assert np.abs(np.median(m.tilt_[:, -2])) < 0.03  # rows 46..52: same scale as today
+
+
+def test_fit_tail_recovers_a_negative_binomial_tail() -> None:
+    # Simulated truth: P(delay >= 20) = 0.25, J = delay - 20 ~ NB(size 2, mean 12); 150 days of
+    # history; fit_tail on the aggregate rows (before, seen, age).
+    rng = np.random.default_rng(8)
+    d_max, n_ref = 20, 150
+    head = _gamma_pmf(4.0, max_delay=d_max - 1) * 0.75
+    j = np.arange(0, 200)
+    tail = stats.nbinom.pmf(j, 2, 2 / (2 + 12.0)) * 0.25  # scipy.stats.nbinom as reference
+    pmf = np.concatenate([head, tail])
+    pmf /= pmf.sum()
+    full, obs = simulate_triangle(np.full((20, n_ref), 300.0), pmf, 0.0, rng)
+    folded = fold_tail(obs, d_max)
+    agg = np.nansum(folded, axis=0)
+    age = n_ref - np.arange(n_ref) - d_max
+    size, mean, share = fit_tail(agg[:, :-1].sum(axis=1), agg[:, -1], age)
+    assert share == pytest.approx(0.25, abs=0.015)
+    assert mean == pytest.approx(12.0, rel=0.1)
+    assert size == pytest.approx(2.0, rel=0.35)
+    g_size, _, g_share = fit_tail(agg[:, :-1].sum(axis=1), agg[:, -1], age, "geometric")
+    assert g_size == 1.0 and g_share == pytest.approx(0.25, abs=0.03)
+    # fold_tail: the bin holds every observed report at delay >= D; NaN for young rows
+    np.testing.assert_allclose(folded[:, :-d_max, -1], np.nansum(obs[:, :-d_max, d_max:], 2))
+    assert np.isnan(folded[:, -1, -1]).all()
+    # the nowcast with this tail: eventual totals of the newest fortnight (simulated truth)
+    m = DelayGLM(family="poisson", tail="negbin", tail_shape=(size, mean), max_delay=d_max,
+                 pool_below=0, pool_fully_below=0).fit(obs[:, -60:])
+    final = full[:, -60:].sum(axis=2)
+    ratio = m.expected_total_[:, -14:] / final[:, -14:]
+    assert np.median(ratio) == pytest.approx(1.0, abs=0.03)
+    cut = DelayGLM(family="poisson", max_delay=d_max, pool_below=0,
+                   pool_fully_below=0).fit(obs[:, -60:])
+    assert np.median(cut.expected_total_[:, -14:] / final[:, -14:]) < 0.8  # tail dropped
+
+
+def test_holidays_weekends_and_the_weekday_test() -> None:
+    rng = np.random.default_rng(12)
+    n_ref = 60
+    g = np.array([1.4, 1.1, 1.0, 1.0, 1.0, 0.0, 0.0])  # nothing reported at weekends
+    pmf = _gamma_pmf(4.0)
+    # report day 44 (a Wednesday, first_ref_weekday 0) is a holiday: its reports arrive a day
+    # later (simulated by moving the cells of that report day to the next)
+    full, _ = simulate_triangle(np.full((30, n_ref), 150.0), pmf, 0.0, rng,
+                                report_weekday_factors=g, first_ref_weekday=0)
+    for t in range(n_ref):
+        d = 44 - t
+        if 0 <= d < 28:
+            full[:, t, d + 1] += full[:, t, d]
+            full[:, t, d] = 0.0
+    obs = _observed_as_of(full, n_ref - 1)
+    days = closed_report_days(obs, 0)
+    np.testing.assert_array_equal(days, [44])  # weekends are a weekday effect, not holidays
+    _, df, p = weekday_lr_test(obs, DelayGLM())
+    assert df == 6 and p < 1e-6
+    m = DelayGLM(weekday_effect=True, holidays=days, pool_below=0, pool_fully_below=0).fit(obs)
+    np.testing.assert_allclose(m.class_effect_[:, 5:], 0.0, atol=1e-9)  # Sat, Sun, holiday
+    # a triangle without weekday effects: the test does not find one (type I error 0.1 %)
+    _, plain = simulate_triangle(np.full((30, n_ref), 150.0), pmf, 0.0, rng)
+    assert weekday_lr_test(plain, DelayGLM())[2] > 0.01
+
+
+def test_random_streams_per_series_and_repeatable_quantiles(sim: dict) -> None:
+    # model protocol: quantiles() twice gives the same; a series' numbers do not depend on
+    # which other series are fitted with it (pooled structure passed in, one stream each)
+    obs = sim["obs"][:40]
+    seeds = series_seeds(11, "cases", [f"R{i}" for i in range(40)])
+    template = DelayGLM(drift=np.zeros(40, dtype=bool))
+    pooled = PooledDelay.fit(obs, template)
+    nc = DelayNowcaster(model=template, random_state=seeds).fit(obs, pooled=pooled)
+    a = nc.quantiles([0.05, 0.5, 0.95], 200)
+    np.testing.assert_array_equal(a, nc.quantiles([0.05, 0.5, 0.95], 200))
+    part = DelayNowcaster(model=DelayGLM(drift=np.zeros(7, dtype=bool)),
+                          random_state=seeds[10:17]).fit(obs[10:17], pooled=pooled)
+    np.testing.assert_allclose(part.quantiles([0.05, 0.5, 0.95], 200), a[10:17], atol=1e-9)
+    assert template.__dict__.get("delay_pmf_") is None  # the passed-in model is not fitted
+
+
+def test_predictive_logpdf_matches_the_gamma_poisson_closed_form() -> None:
+    # As in the sampling test above: Poisson cells, no parameter uncertainty -> the arrivals of
+    # the predicted cells are NegBin(O + kappa, rate / (rate + M)) (scipy.stats.nbinom).
+    rng = np.random.default_rng(21)
+    _, obs = simulate_triangle(np.full((1, 50), 15.0), _gamma_pmf(4.0, max_delay=20), 0.0, rng)
+    nc = DelayNowcaster(model=DelayGLM(family="poisson"), parameter_uncertainty=False).fit(obs)
+    m = nc.model_
+    t = 49
+    count, frac = m.observed_counts_[0, t], m.observed_fraction_[0, t]
+    miss = (m.row_pmf_[0, t] * m.predict_mask_[0, t]).sum()
+    rate = frac + nc.prior_shape / nc.prior_level_[0]
+    size, p = count + nc.prior_shape, rate / (rate + miss)
+    y = np.zeros((1, 50))
+    for k in (0, 3, 9):
+        y[0, t] = k
+        lp, lo, hi = nc.predictive_logpdf(m.predict_exposure_, y)
+        assert np.exp(lp[0, t]) == pytest.approx(stats.nbinom.pmf(k, size, p), rel=1e-9)
+        assert hi[0, t] == pytest.approx(stats.nbinom.cdf(k, size, p), rel=1e-9)
+        assert lo[0, t] == pytest.approx(stats.nbinom.cdf(k - 1, size, p), abs=1e-12)
+
+
+def test_backtest_arrivals_are_what_came_in(drifting) -> None:
+    full = drifting["full"][:5]
+    lag, n_ref = 7, 40
+    now = _observed_as_of(full[:, 10:10 + n_ref], n_ref - 1)
+    then = _observed_as_of(full[:, 10 - lag:10 - lag + n_ref], n_ref - 1)
+    exposure, y = backtest_arrivals(now, then, lag, None, 29)
+    # row i of `then` is row i - lag of `now`; what arrived is the cells of days T..T+lag-1
+    for i in range(n_ref - 29, n_ref):
+        d = np.arange(29)
+        came = (i + d > n_ref - 1) & (i + d <= n_ref - 1 + lag)
+        np.testing.assert_array_equal(exposure[0, i] > 0, came)
+        if came.any():
+            np.testing.assert_allclose(y[:, i], full[:, 10 - lag + i, came].sum(axis=1))
+        else:  # nothing could arrive: not scored
+            assert np.isnan(y[:, i]).all()
+    assert np.isnan(y[:, : n_ref - 29]).all()

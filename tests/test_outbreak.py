@@ -17,6 +17,7 @@ import pytest
 from scipy import optimize, special, stats
 
 from tallywave.models.outbreak import (
+    SCENARIOS,
     ReportingProcess,
     SeirdModel,
     TransmissionSchedule,
@@ -27,9 +28,11 @@ from tallywave.models.outbreak import (
     gravity_mixing,
     inject_backlog_dump,
     inject_duplicate_correction,
+    move_to_open_days,
+    reporting_scenario,
     simulate_outbreak,
 )
-from tallywave.pipeline.simulate import write_scenario
+from tallywave.pipeline.simulate import observations_frame, write_scenario
 
 START = dt.date(2026, 3, 2)
 
@@ -349,3 +352,136 @@ def test_scenario_truth_tables(default_set) -> None:
         "admissions": 21, "cases": 20, "deaths": 28}
     total_cases = sum(v for (_, s, _), v in _final(out).items() if s == "cases")
     assert total_cases == sc.triangles["cases"].sum()
+
+
+# ---------------------------------------------------------------- reporting scenarios
+
+
+@pytest.fixture(scope="module")
+def scenario_paths():
+    """One epidemic (6 districts, 160 days) observed under every named reporting scenario."""
+    out = {}
+    for name in SCENARIOS:
+        rep = reporting_scenario(name, 160, first_weekday=0)
+        out[name] = (rep, simulate_outbreak(n_regions=6, n_days=160, n_snapshots=60, window=35,
+                                            seed=5, reporting=rep))
+    return out
+
+
+def _mean_delay(x: np.ndarray) -> float:
+    return float((x * np.arange(x.size)).sum() / x.sum())
+
+
+def test_scenarios_share_the_epidemic_and_keep_every_report(scenario_paths) -> None:
+    _, base = scenario_paths["default"]
+    for name, (_, sc) in scenario_paths.items():
+        np.testing.assert_array_equal(sc.path.infections, base.path.infections)
+        for sig in ("cases", "admissions", "deaths"):
+            # reports are only moved along the delay axis: reference-date totals are binomial
+            # draws of the same epidemic (a delay change does not lose or add events)
+            assert sc.triangles[sig].sum() == pytest.approx(base.triangles[sig].sum(),
+                                                            rel=0.05), (name, sig)
+    # the default scenario is the original reporting process, draw for draw
+    again = simulate_outbreak(n_regions=6, n_days=160, n_snapshots=60, window=35, seed=5)
+    for sig in ("cases", "admissions", "deaths"):
+        np.testing.assert_array_equal(again.triangles[sig], base.triangles[sig])
+
+
+@pytest.mark.parametrize("name, before, after", [("delay_lengthens", 4.0, 8.0),
+                                                  ("delay_shortens", 8.0, 4.0)])
+def test_drifting_delay_means_follow_the_ramp(scenario_paths, name, before, after) -> None:
+    rep, sc = scenario_paths[name]
+    path = rep.delay_pmf_path("cases", 160)
+
+    def floored_mean(mean: float) -> float:
+        # E[floor X | X < 29] for X ~ gamma(mean, sd = 0.75 mean) (scipy.stats.gamma)
+        g = stats.gamma(a=(1 / 0.75) ** 2, scale=0.75**2 * mean)
+        p = np.diff(g.cdf(np.arange(30)))
+        return float((p * np.arange(29)).sum() / p.sum())
+
+    assert _mean_delay(path[0]) == pytest.approx(floored_mean(before), abs=1e-9)
+    assert _mean_delay(path[-1]) == pytest.approx(floored_mean(after), abs=1e-9)
+    assert rep.delay_scale(160)[159 - 55] == pytest.approx(1.0)
+    assert rep.delay_scale(160)[159 - 14] == pytest.approx(after / before)
+    # simulated truth: empirical mean delay of the cases before and after the ramp
+    tri = sc.triangles["cases"]
+    early = tri[:, 60:100].sum(axis=(0, 1))
+    late = tri[:, 146:160].sum(axis=(0, 1))
+    assert _mean_delay(early) == pytest.approx(floored_mean(before), abs=0.4)
+    assert _mean_delay(late) == pytest.approx(floored_mean(after), abs=0.6)
+
+
+def test_weekend_and_holiday_report_days_stay_empty(scenario_paths) -> None:
+    rep, sc = scenario_paths["weekend_reporting"]
+    _, base = scenario_paths["default"]
+    assert len(rep.holidays) == 2 and all(h % 7 < 5 for h in rep.holidays)
+    for sig in ("cases", "admissions", "deaths"):
+        tri = sc.triangles[sig]
+        n_t, k = tri.shape[1:]
+        day = np.arange(n_t)[:, None] + np.arange(k)[None, :]
+        by_day = np.bincount(day.ravel(), weights=tri.sum(axis=0).ravel())
+        closed = rep.closed_report_days(by_day.size, 0)
+        assert by_day[closed].sum() == 0
+        if sig == "cases":  # open days mid-epidemic always carry reports
+            assert by_day[60:150][~closed[60:150]].min() > 0
+        # moved, not lost: each reference day keeps the eventual total of the same draws
+        # without closures (the closures use no random numbers)
+        np.testing.assert_array_equal(tri.sum(axis=2), base.triangles[sig].sum(axis=2))
+    # Monday after a closed weekend carries about three days of reports (cases, mid-epidemic)
+    tri = sc.triangles["cases"]
+    day = np.arange(160)[:, None] + np.arange(tri.shape[2])[None, :]
+    by_day = np.bincount(day.ravel(), weights=tri.sum(axis=0).ravel())
+    mondays = [u for u in range(70, 150) if u % 7 == 0 and u not in rep.holidays]
+    fridays = [u - 3 for u in mondays]
+    assert by_day[mondays].sum() > 2.0 * by_day[fridays].sum()
+
+
+def test_move_to_open_days_small_example() -> None:
+    tri = np.array([[[5, 1, 0], [2, 2, 2]]])
+    closed = np.array([False, True, True, False, False, False, False])
+    out = move_to_open_days(tri, closed)
+    # ref 0: delay 1 (day 1, closed) -> day 3 = delay 3; delay 2 (day 2) -> delay 3
+    # ref 1: delay 0 (day 1) -> day 3 = delay 2; delay 1 (day 2) -> delay 2; delay 2 stays
+    np.testing.assert_array_equal(out, [[[5, 0, 0, 1, 0], [0, 0, 6, 0, 0]]])  # width 3 + 2
+
+
+def test_long_tail_puts_a_fifth_beyond_28_days(scenario_paths) -> None:
+    rep, sc = scenario_paths["long_tail"]
+    for sig, pmf in rep.delay_pmfs().items():
+        assert pmf[29:].sum() >= 0.20, sig
+        assert pmf.sum() == pytest.approx(1.0)
+    tri = sc.triangles["cases"]
+    share = tri[:, :100, 29:].sum() / tri[:, :100].sum()
+    # binomial share of a 0.2+ probability over thousands of reports
+    assert share == pytest.approx(rep.delay_pmfs()["cases"][29:].sum(), abs=0.02)
+
+
+def test_observations_frame_replays_the_triangles(scenario_paths) -> None:
+    _, sc = scenario_paths["long_tail"]
+    obs = observations_frame(sc, START, first_as_of=100, last_as_of=140)
+    assert obs["as_of"].min() == np.datetime64(START + dt.timedelta(days=100))
+    assert obs["as_of"].max() <= np.datetime64(START + dt.timedelta(days=140))
+    cases = obs[obs["signal"] == "cases"].sort_values("as_of")
+    known = cases.groupby(["region", "ref_date"])["value"].last()
+    tri = sc.triangles["cases"]
+    cum = np.cumsum(tri, axis=2)
+    for (region, ref), value in known.sample(40, random_state=1).items():
+        r = sc.names.index(region)
+        t = (ref.date() - START).days
+        d = min(140 - t, tri.shape[2] - 1)
+        assert value == cum[r, t, d]
+    # only changes are rows: no two consecutive rows of a key with the same value
+    dup = cases.groupby(["region", "ref_date"])["value"].diff() == 0
+    assert not dup.any()
+
+
+def test_named_scenario_written_with_its_name(tmp_path: Path) -> None:
+    info = write_scenario(tmp_path, n_regions=3, n_days=80, n_snapshots=5, window=14,
+                          scenario="weekend_reporting")
+    scen = json.loads((tmp_path / "truth" / "scenario.json").read_text())
+    assert scen["scenario"] == "weekend_reporting"
+    assert scen["parameters"]["reporting"]["closed_weekdays"] == [5, 6]
+    assert info["n_files"] == 3 * 5 + 2 + 5
+    with pytest.raises(ValueError, match="unknown scenario"):
+        write_scenario(tmp_path, n_regions=3, n_days=80, n_snapshots=5, window=14,
+                       scenario="weekends")

@@ -1,4 +1,5 @@
-"""Tests for models.scores: closed forms, reference libraries, hand arithmetic, SQL = numpy."""
+"""Tests for models.scores (and its SQL in pipeline.scores_sql / pipeline.accuracy): closed
+forms, reference libraries, hand arithmetic, SQL = numpy, counts."""
 
 from __future__ import annotations
 
@@ -13,15 +14,19 @@ from tallywave.models.scores import (
     FORECAST_KEY,
     bias_from_quantiles,
     central_intervals,
+    coverage_fraction,
     interval_coverage,
+    log_wis,
     pairwise_relative_wis,
     pit_bounds,
     pit_from_quantiles,
-    pit_uniform_sql,
+    pit_histogram,
     quantile_score,
-    score_sql,
+    randomised_pit,
     weighted_interval_score,
 )
+from tallywave.pipeline import store
+from tallywave.pipeline.scores_sql import pit_uniform_sql, score_sql
 
 LEVELS_9 = np.array([0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975])
 # 23 levels: 0.01, 0.025, 0.05, 0.10, ..., 0.95, 0.975, 0.99 (common practice in forecast hubs)
@@ -383,11 +388,12 @@ def _load(con, fc: pd.DataFrame, truth: pd.DataFrame) -> None:
     )
 
 
-def test_sql_matches_numpy():
+@pytest.mark.parametrize("counts", [False, True])
+def test_sql_matches_numpy(counts):
     fc, truth, wide = _sql_case(0)
     con = duckdb.connect()
     _load(con, fc, truth)
-    sql = score_sql("fc", "truth", extra_truth_columns=["truth_as_of"])
+    sql = score_sql("fc", "truth", extra_truth_columns=["truth_as_of"], counts=counts)
     got = con.execute(sql + " ORDER BY " + ", ".join(FORECAST_KEY)).df()
     u = con.execute(
         f"SELECT DISTINCT {', '.join(FORECAST_KEY)}, {pit_uniform_sql(0)} AS u FROM fc"
@@ -414,15 +420,19 @@ def test_sql_matches_numpy():
         np.testing.assert_allclose(
             g["wis"], 2 * quantile_score(y, lev, q).mean(axis=1), rtol=1e-9, atol=1e-9
         )
+        np.testing.assert_allclose(g["wis_log"], log_wis(y, lev, q), rtol=1e-9, atol=1e-9)
         med = q[:, np.argmin(np.abs(lev - 0.5))]
         np.testing.assert_allclose(g["abs_error"], np.abs(med - y), atol=1e-9)
-        low, high = pit_bounds(y, lev, q)
+        low, high = pit_bounds(y, lev, q, discrete=counts)
         np.testing.assert_allclose(g["pit_low"], low, atol=1e-9)
         np.testing.assert_allclose(g["pit_high"], high, atol=1e-9)
         np.testing.assert_allclose(
-            g["pit"], pit_from_quantiles(y, lev, q, u=u[rows]), atol=1e-9
+            g["pit"], pit_from_quantiles(y, lev, q, u=u[rows], discrete=counts), atol=1e-9
         )
-        np.testing.assert_allclose(g["bias"], bias_from_quantiles(y, lev, q), atol=1e-9)
+        np.testing.assert_allclose(g["bias"], bias_from_quantiles(y, lev, q, discrete=counts),
+                                   atol=1e-9)
+        for w, col in ((0.5, "cover_frac_50"), (0.9, "cover_frac_90")):
+            np.testing.assert_allclose(g[col], coverage_fraction(low, high, w), atol=1e-9)
         if lev_name != "three":
             for w, col in ((0.5, "covered_50"), (0.9, "covered_90")):
                 np.testing.assert_array_equal(
@@ -460,3 +470,125 @@ def test_sql_rejects_bad_identifiers():
         score_sql("fc; DROP TABLE truth", "truth")
     with pytest.raises(ValueError, match="truth column"):
         score_sql("out.forecasts", "truth", extra_truth_columns=["x y"])
+
+
+# ---------------------------------------------------------------------------------------------
+# counts: randomised PIT, tie-corrected coverage, log-scale WIS
+# ---------------------------------------------------------------------------------------------
+
+
+def _poisson_support(lam: float) -> tuple[np.ndarray, np.ndarray]:
+    y = np.arange(0, int(stats.poisson.ppf(1 - 1e-12, lam)) + 2, dtype=float)
+    return y, stats.poisson.pmf(y, lam)
+
+
+@pytest.mark.parametrize("lam", [0.7, 2.0, 12.0])
+def test_randomised_pit_of_a_perfect_poisson_forecast_is_uniform(lam):
+    # Czado, Gneiting & Held (2009, Biometrics): for a discrete predictive F equal to the law
+    # of y, F(y - 1) + U (F(y) - F(y - 1)) is exactly U(0, 1) (from memory); reference CDF
+    # scipy.stats.poisson.  Checked by scipy.stats.kstest on draws, and in closed form: the
+    # non-randomised PIT histogram (its expectation) is flat to 1e-12.
+    rng = np.random.default_rng(int(lam * 10))
+    y = rng.poisson(lam, 20000)
+    pit = randomised_pit(stats.poisson.cdf(y - 1, lam), stats.poisson.cdf(y, lam),
+                         rng.uniform(size=y.size))
+    assert stats.kstest(pit, "uniform").pvalue > 0.01
+    ys, pmf = _poisson_support(lam)
+    lo, hi = stats.poisson.cdf(ys - 1, lam), stats.poisson.cdf(ys, lam)
+    bins = np.array([pit_histogram(lo[i:i + 1], hi[i:i + 1]) for i in range(ys.size)])
+    np.testing.assert_allclose(pmf @ bins, 0.1, atol=1e-12)
+    # tie-corrected coverage of the exact PIT range is nominal (same closed form)
+    for w in (0.5, 0.9):
+        assert pmf @ coverage_fraction(lo, hi, w) == pytest.approx(w, abs=1e-12)
+
+
+@pytest.mark.parametrize(("lam", "levels", "tol"),
+                         [(2.0, LEVELS_23, 0.02), (12.0, LEVELS_23, 0.025),
+                          (60.0, LEVELS_23, 0.02), (2.0, LEVELS_9, 0.06)])
+def test_count_pit_and_coverage_from_quantiles_of_a_perfect_poisson_forecast(lam, levels, tol):
+    # A perfect Poisson(lam) forecast published as quantiles (scipy.stats.poisson.ppf), truth
+    # from the same law; expectations summed exactly over the support (no sampling).
+    ys, pmf = _poisson_support(lam)
+    q = np.broadcast_to(stats.poisson.ppf(levels, lam), (ys.size, levels.size))
+    lo, hi = pit_bounds(ys, levels, q, discrete=True)
+    bins = np.array([pit_histogram(lo[i:i + 1], hi[i:i + 1]) for i in range(ys.size)])
+    deciles = pmf @ bins
+    assert np.abs(deciles - 0.1).max() < tol * 1.5, deciles
+    for w in (0.5, 0.9):
+        assert pmf @ coverage_fraction(lo, hi, w) == pytest.approx(w, abs=tol)
+    if lam == 2.0:
+        # the closed intervals over-cover: P(q25 <= Y <= q75) = 0.72, P(q05 <= Y <= q95) =
+        # 0.98 for Poisson(2) (issue figures, recomputed here with scipy.stats.poisson)
+        i = {round(v, 3): j for j, v in enumerate(levels)}
+        closed50 = pmf @ ((q[:, i[0.25]] <= ys) & (ys <= q[:, i[0.75]]))
+        closed90 = pmf @ ((q[:, i[0.05]] <= ys) & (ys <= q[:, i[0.95]]))
+        assert closed50 == pytest.approx(0.722, abs=0.002)
+        assert closed90 == pytest.approx(0.983, abs=0.002)
+        # and the continuous PIT (no count treatment) is much further from flat
+        clo, chi = pit_bounds(ys, levels, q)
+        old = pmf @ np.array([pit_histogram(clo[i:i + 1], chi[i:i + 1])
+                              for i in range(ys.size)])
+        assert np.abs(old - 0.1).max() > 2.5 * np.abs(deciles - 0.1).max()
+
+
+def test_count_pit_small_cases_by_hand():
+    # levels 0.25/0.5/0.75 with quantiles 1, 2, 4: H interpolates (q, tau) linearly and reaches
+    # 0 at -1/2 (counts >= 0).
+    lev = [0.25, 0.5, 0.75]
+    q = np.array([[1.0, 2.0, 4.0]] * 4)
+    y = np.array([0.0, 2.0, 3.0, 7.0])
+    low, high = pit_bounds(y, lev, q, discrete=True)
+    # y = 0: [H(-0.5), H(0.5)] = [0, 0.25 * 1/1.5]; y = 2: [H(1.5), H(2.5)] = [0.375, 0.5625];
+    # y = 3: [H(2.5), H(3.5)] = [0.5625, 0.6875]; y = 7: beyond q(0.75): [0.75, 1]
+    np.testing.assert_allclose(low, [0.0, 0.375, 0.5625, 0.75])
+    np.testing.assert_allclose(high, [0.25 / 1.5, 0.5625, 0.6875, 1.0])
+    # 50% interval [0.25, 0.75]: y = 0 outside, y = 2 and 3 inside, y = 7 outside
+    np.testing.assert_allclose(coverage_fraction(low, high, 0.5), [0.0, 1.0, 1.0, 0.0])
+    # a non-integer truth is scored as continuous
+    lo2, hi2 = pit_bounds(np.array([2.5]), lev, q[:1], discrete=True)
+    np.testing.assert_allclose([lo2[0], hi2[0]], [0.5625, 0.5625])
+    # PIT range straddling a bound: [0.2, 0.4] against [0.25, 0.75] -> 3/4 inside
+    assert coverage_fraction(np.array([0.2]), np.array([0.4]), 0.5)[0] == pytest.approx(0.75)
+
+
+def test_log_scale_wis_by_hand_and_scale_free():
+    # Bosse et al. (2023): WIS of log(y + 1) against log(q + 1).  Hand: levels 0.25/0.5/0.75,
+    # quantiles e-1, e^2-1, e^3-1 -> log-scale 1, 2, 3; y = e^4 - 1 -> 4 (above all).  Pinball
+    # tau (y - q): 0.25*3 + 0.5*2 + 0.75*1 = 2.5, WIS = 2 * 2.5 / 3 = 5/3.
+    e = np.e
+    got = log_wis([e**4 - 1], [0.25, 0.5, 0.75], [[e - 1, e**2 - 1, e**3 - 1]])
+    assert got[0] == pytest.approx(5.0 / 3.0, rel=1e-12)
+    # relative errors: a forecast 10x too high scores the same at every size (nearly: + 1)
+    big = log_wis([1e6], LEVELS_9, 1e7 * np.ones((1, 9)))[0]
+    huge = log_wis([1e8], LEVELS_9, 1e9 * np.ones((1, 9)))[0]
+    assert big == pytest.approx(huge, rel=1e-5) and big == pytest.approx(np.log(10), rel=1e-5)
+    # negatives count as 0
+    assert log_wis([-3.0], LEVELS_9, np.zeros((1, 9)))[0] == 0.0
+
+
+def test_relative_wis_view_equals_python():
+    # One relative-WIS definition: the out.accuracy views (SQL) and pairwise_relative_wis
+    # (numpy) on the same scores, natural and log scale, incl. a model with zero WIS somewhere
+    # and models missing forecasts.
+    rng = np.random.default_rng(44)
+    df = _score_frame(rng, {"baseline": 1.0, "a": 0.7, "b": 1.4, "c": 0.9}, n_regions=3)
+    df["wis"] *= rng.uniform(0.5, 1.5, len(df))
+    df["wis_log"] = np.log1p(df["wis"]) * rng.uniform(0.8, 1.2, len(df))
+    df.loc[df.sample(frac=0.05, random_state=1).index, ["wis", "wis_log"]] = 0.0
+    df = df[(rng.uniform(size=len(df)) > 0.25) | (df.model == "baseline")].reset_index(drop=True)
+    df["issued_on"] = df["issued_on"].dt.date
+    df["target_date"] = df["target_date"].dt.date
+    con = store.memory()
+    rows = df.assign(truth=1.0, truth_as_of=df["target_date"], covered_50=True,
+                     covered_90=True, bias=0.0, abs_error=1.0)
+    store.insert_df(con, "out.scores", rows)
+    for view, by in (("out.accuracy", ["signal", "horizon_days"]),
+                     ("out.accuracy_by_region", ["signal", "horizon_days", "region"])):
+        sql = con.execute(f"SELECT * FROM {view}").df()
+        for col, rel in (("wis", "rel_wis"), ("wis_log", "rel_wis_log")):
+            py = pairwise_relative_wis(df, by=by, column=col)[[*by, "model", "rel_wis"]]
+            both = sql.merge(py.rename(columns={"rel_wis": "python"}), on=[*by, "model"])
+            assert len(both) == len(py) == len(sql)
+            np.testing.assert_allclose(both[rel], both["python"], rtol=1e-10)
+    base = con.execute("SELECT rel_wis FROM out.accuracy WHERE model = 'baseline'").df()
+    assert (base["rel_wis"] == 1.0).all()
