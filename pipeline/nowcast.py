@@ -394,6 +394,13 @@ def _triangles(con: duckdb.DuckDBPyConnection, as_of: dt.date, run_id: str, sign
     return tri, then
 
 
+def _leaf_rows(con: duckdb.DuckDBPyConnection, regions: np.ndarray) -> np.ndarray:
+    """Positions of the regions that are not parents in the region hierarchy."""
+    parents = {r[0] for r in con.execute(
+        "SELECT region FROM core.regions WHERE coalesce(n_children, 0) > 0").fetchall()}
+    return np.array([i for i, r in enumerate(regions) if r not in parents], dtype=np.int64)
+
+
 def _nowcast_signal(con: duckdb.DuckDBPyConnection, as_of: dt.date, run_id: str, signal: str,
                     cfg: dict[str, Any], firsts: dict[str, dt.date], mapper: Mapper
                     ) -> dict[str, Any] | None:
@@ -406,7 +413,14 @@ def _nowcast_signal(con: duckdb.DuckDBPyConnection, as_of: dt.date, run_id: str,
     if tri.tail:
         history = tail_history(con, as_of, signal, int(cfg["max_delay_days"]),
                                int(cfg["nowcast_tail_days"]), firsts.get(signal))
-    sig = _signal_delay(tri, then, cfg, history)
+    # parents of a region hierarchy are sums of their children: pooling them too would count
+    # every report twice, so the signal-level structure is fitted on the leaf regions
+    leaves = _leaf_rows(con, tri.regions)
+    if 0 < leaves.size < len(tri.regions):
+        sig = _signal_delay(tri.take(leaves), None if then is None else then.take(leaves), cfg,
+                            history)
+    else:
+        sig = _signal_delay(tri, then, cfg, history)
     parts = batches(len(tri.regions), int(cfg["batch_regions"]))
     jobs = [(tri.take(s), None if then is None else then.take(s), sig, cfg) for s in parts]
     results = mapper(_fit_block, jobs)
