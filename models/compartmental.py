@@ -1338,6 +1338,7 @@ class CompartmentalModel:
         n_draws: int | None = None,
         *,
         multiplier: np.ndarray | None = None,
+        dispersion: Mapping[str, np.ndarray] | None = None,
     ) -> dict[str, np.ndarray]:
         """Predictive draws: signal -> array (n_regions, n_draws, horizon) of counts.
 
@@ -1345,7 +1346,10 @@ class CompartmentalModel:
         the data (one step per knot period, sd ``drift_sd`` x sqrt(knot days), from the last
         knot) and
         negative-binomial count noise.  ``multiplier`` (n_regions, horizon) scales transmission
-        on each future day (scenarios; 1 = unchanged).  Randomness: one stream per region from
+        on each future day (scenarios; 1 = unchanged).  ``dispersion`` (signal -> (n_regions,))
+        caps the fitted sizes of the count noise: an in-sample fit of a smooth curve can find
+        the counts nearly Poisson while its forecasts meet wider errors (e.g. sizes estimated
+        from one-day-ahead errors, :func:`tallywave.models.renewal_forecast.estimate_dispersion`).  Randomness: one stream per region from
         ``random_state``, rebuilt on every call.  Regions that could not be fitted get NaN.
         """
         if not hasattr(self, "theta_"):
@@ -1380,7 +1384,12 @@ class CompartmentalModel:
                                                   future_log_beta=flat_future[sl],
                                                   only_future=True)
         mu = flat_mu.reshape(n_reg, n_draws, len(lay.signals), horizon)
-        draws = _nb_by_day(rnd, np.nan_to_num(mu, nan=0.0), np.exp(self.log_dispersion_))
+        k = np.exp(self.log_dispersion_)
+        for j, sig in enumerate(lay.signals):
+            if dispersion is not None and sig in dispersion:
+                cap = np.asarray(dispersion[sig], dtype=float)
+                k[:, j] = np.where(np.isfinite(cap) & (cap > 0), np.minimum(k[:, j], cap), k[:, j])
+        draws = _nb_by_day(rnd, np.nan_to_num(mu, nan=0.0), k)
         draws[~self.usable_] = np.nan
         return {s: draws[:, :, j, :] for j, s in enumerate(lay.signals)}
 
@@ -1391,17 +1400,19 @@ class CompartmentalModel:
         n_draws: int | None = None,
         *,
         multiplier: np.ndarray | None = None,
+        dispersion: Mapping[str, np.ndarray] | None = None,
     ) -> dict[str, QuantileForecast]:
         """Forecast quantiles per signal: (regions × days 1..horizon × levels).
 
         Horizon 1 is the day after the last data day.  Quantiles are non-decreasing in the level
         and non-negative (NaN for regions that could not be fitted).  ``levels`` defaults to the
-        model's ``q_levels``; ``multiplier`` as in :meth:`sample_forecast`.
+        model's ``q_levels``; ``multiplier`` and ``dispersion`` as in :meth:`sample_forecast`.
         """
         q = np.asarray(self.q_levels if levels is None else levels, dtype=float)
         if q.ndim != 1 or np.any((q < 0) | (q > 1)) or np.any(np.diff(q) <= 0):
             raise ValueError("levels must be increasing probabilities in [0, 1]")
-        draws = self.sample_forecast(horizon, n_draws, multiplier=multiplier)
+        draws = self.sample_forecast(horizon, n_draws, multiplier=multiplier,
+                                     dispersion=dispersion)
         out: dict[str, QuantileForecast] = {}
         for s, d in draws.items():
             with np.errstate(invalid="ignore"):

@@ -29,9 +29,15 @@ from typing import Any
 import numpy as np
 
 from tallywave.models.base import QuantileForecast, RandomState, SeriesRandom
-from tallywave.models.renewal import _as_incidence, _check_q_levels, resolve_interval
+from tallywave.models.renewal import (
+    CoriEstimator,
+    _as_incidence,
+    _check_q_levels,
+    resolve_interval,
+)
 
-__all__ = ["RenewalForecaster", "estimate_dispersion", "estimate_log_r_drift", "sample_r"]
+__all__ = ["RenewalForecaster", "estimate_dispersion", "estimate_log_r_drift", "one_step_expected",
+           "sample_r"]
 
 #: Bounds of an estimated negative-binomial size (below 1 a daily count is wilder than a
 #: geometric one; above 1e4 it is Poisson for any count seen in practice).
@@ -39,20 +45,34 @@ DISPERSION_BOUNDS = (1.0, 1e4)
 
 
 def estimate_dispersion(y: np.ndarray, window: int = 42, skip_last: int = 3,
-                        pooled: float | None = None) -> np.ndarray:
+                        pooled: float | None = None, expected: np.ndarray | None = None
+                        ) -> np.ndarray:
     """Negative-binomial size k per series (n_series, T) from the recent days: moments of the
-    residuals around a centred 7-day mean, Var = m + m^2 / k.
+    residuals around an expected value, Var = m + m^2 / k.
 
-    The centred mean includes the day itself, which removes (1/7) of the day's own noise from the
-    residual; the residual variance is scaled back by 7/6.  Only the last ``window`` days with a
-    full centred window are used (the last ``skip_last`` days have none).  Series with too little
-    information get ``pooled`` (or the median of the others).  Clipped to
-    :data:`DISPERSION_BOUNDS`.
+    ``expected`` (n_series, T): e.g. one-step-ahead renewal predictions, whose errors are what a
+    projection meets on its first day (NaN where unknown).  Without it, a centred 7-day mean:
+    it includes the day itself, which removes (1/7) of the day's own noise from the residual, so
+    the residual variance is scaled back by 7/6.  Only the last ``window`` days before the last
+    ``skip_last`` are used.  Series with too little information get ``pooled`` (or the median of
+    the others).  Clipped to :data:`DISPERSION_BOUNDS`.
     """
     arr = np.atleast_2d(np.asarray(y, dtype=float))
     n, t = arr.shape
     k_out = np.full(n, np.nan)
-    if t >= 7 + skip_last:
+    if expected is not None:
+        mu = np.atleast_2d(np.asarray(expected, dtype=float))
+        sl = slice(max(t - skip_last - window, 0), t - skip_last)
+        yy, mm = arr[:, sl], mu[:, sl]
+        ok = np.isfinite(yy) & np.isfinite(mm) & (mm > 0)
+        excess = np.where(ok, (yy - mm) ** 2 - mm, 0.0).sum(axis=1)
+        m2 = np.where(ok, mm ** 2, 0.0).sum(axis=1)
+        enough = (np.where(ok, mm, 0.0).sum(axis=1) >= 5.0 * ok.sum(axis=1) / 7.0) & \
+            (ok.sum(axis=1) >= 7)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            k_out = np.where(enough, np.where(excess > 0, m2 / excess, DISPERSION_BOUNDS[1]),
+                             np.nan)
+    elif t >= 7 + skip_last:
         x = np.nan_to_num(arr)
         c = np.cumsum(np.concatenate([np.zeros((n, 1)), x], axis=1), axis=1)
         m = (c[:, 7:] - c[:, :-7]) / 7.0  # mean of days j..j+6, centred on j+3
@@ -73,15 +93,29 @@ def estimate_dispersion(y: np.ndarray, window: int = 42, skip_last: int = 3,
     return np.clip(k_out, *DISPERSION_BOUNDS)
 
 
+def one_step_expected(y: np.ndarray, interval_pmf: Any, window: int = 7) -> np.ndarray:
+    """One-day-ahead renewal predictions (n_series, T): R estimated up to day t - 1 (Cori et
+    al. 2013 posterior mean, flat-ish prior) times the infectiousness of day t; NaN where R
+    cannot be estimated.  Their errors are what a projection meets on its first day."""
+    arr = np.nan_to_num(np.atleast_2d(np.asarray(y, dtype=float)))
+    est = CoriEstimator(window=int(window), prior_shape=1.0, prior_scale=5.0,
+                        min_infections=0.0).fit(arr, interval_pmf)
+    mu = np.full(arr.shape, np.nan)
+    mu[:, 1:] = est.mean_[:, :-1] * est.infectiousness_[:, 1:]
+    return mu
+
+
 def estimate_log_r_drift(r_mean: np.ndarray, log_sd: np.ndarray | None = None, lag: int = 7,
                          bounds: tuple[float, float] = (0.005, 0.08),
-                         max_log_sd: float = 0.3) -> float:
+                         max_log_sd: float = 0.3, robust: bool = True) -> float:
     """Random-walk sd per day of log R from a history of R estimates (n_series, T).
 
     Uses changes of log R over ``lag`` days (the estimator's window, so the two estimates share
     no data): E[change^2] = lag × sd^2 + the estimation variance of both ends, which ``log_sd``
     (the posterior sd of log R per cell, e.g. (q95 - q05) / (2 × 1.645 × mean)) lets us remove.
-    Cells estimated more loosely than ``max_log_sd`` are left out.  Pooled over every series
+    Cells estimated more loosely than ``max_log_sd`` are left out.  ``robust``: the spread of the
+    changes from their median absolute value, so the few large steps of an intervention (a jump,
+    not a drift) do not set the day-to-day drift of every projection.  Pooled over every series
     (so a region with a short history borrows from the others), clipped to ``bounds``; the upper
     bound is also the answer when fewer than 10 changes are usable.
     """
@@ -99,7 +133,11 @@ def estimate_log_r_drift(r_mean: np.ndarray, log_sd: np.ndarray | None = None, l
     ok = np.isfinite(d) & np.isfinite(noise)
     if ok.sum() < 10:
         return float(bounds[1])
-    var = float((d[ok] ** 2).mean() - noise[ok].mean()) / lag
+    if robust:  # scale from the median absolute change (normal consistency 1.4826)
+        total = (1.4826 * float(np.median(np.abs(d[ok])))) ** 2
+    else:
+        total = float((d[ok] ** 2).mean())
+    var = (total - float(np.median(noise[ok]) if robust else noise[ok].mean())) / lag
     return float(np.clip(np.sqrt(max(var, 0.0)), *bounds))
 
 

@@ -38,6 +38,7 @@ from tallywave.models.renewal_forecast import (
     RenewalForecaster,
     estimate_dispersion,
     estimate_log_r_drift,
+    one_step_expected,
     sample_r,
 )
 from tallywave.pipeline.clean import cleaned_blocks
@@ -121,7 +122,7 @@ def _renewal_job(args: tuple) -> dict[str, Any]:
 
 def _compartmental_job(args: tuple) -> dict[str, Any]:
     """Fit one batch of regions jointly over the signals; forecast and run the scenarios."""
-    observed, population, init, prior, immune, cfg, seeds, drift, scen = args
+    observed, population, init, prior, immune, cfg, seeds, drift, scen, noise = args
     delays = cfg["compartmental_delays"]
     fracs = cfg["compartmental_fractions"]
     model = CompartmentalModel(
@@ -136,10 +137,10 @@ def _compartmental_job(args: tuple) -> dict[str, Any]:
         n_draws=int(cfg["forecast_draws"]), q_levels=cfg["quantiles"], random_state=seeds)
     model.fit(observed, population, init=init, prior_counts=prior, immune=immune)
     h = int(cfg["horizon_days"])
-    fc = {s: r.values for s, r in model.forecast(h, cfg["quantiles"]).items()}
-    scenarios = {name: {s: r.values for s, r in model.forecast(h, cfg["quantiles"],
-                                                               multiplier=m).items()}
-                 for name, m in scen}
+    fc = {s: r.values for s, r in model.forecast(h, cfg["quantiles"],
+                                                 dispersion=noise).items()}
+    scenarios = {name: {s: r.values for s, r in model.forecast(
+        h, cfg["quantiles"], multiplier=m, dispersion=noise).items()} for name, m in scen}
     capacity = {s: model.susceptible_ * model.population_  # people left to infect ...
                 * model.fraction_path_[s][:, -1]  # ... in the units of the signal
                 for s in model.signals_}
@@ -235,6 +236,15 @@ def _rt_drift(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
                                 bounds=(min(0.005, ceiling), ceiling))
 
 
+def _noise_sizes(y: np.ndarray, cfg: dict[str, Any]) -> np.ndarray:
+    """Negative-binomial sizes of each region's count noise, from the errors of one-day-ahead
+    renewal predictions over the last six weeks (regions with too few counts: the median of the
+    signal's others, all regions of the signal taken together before batching)."""
+    tail = y[:, -90:]
+    mu = one_step_expected(tail, interval_pmfs(cfg)[0], int(cfg["rt_window_days"]))
+    return estimate_dispersion(tail, expected=mu)
+
+
 def _long(run_id: str, as_of: dt.date, model: str, signal: str, regions: np.ndarray,
           q_levels: list[float], q: np.ndarray) -> pd.DataFrame:
     n, h, k = q.shape
@@ -274,6 +284,7 @@ class _Run:
         self.results: dict[str, dict[str, np.ndarray]] = {}  # model -> signal -> (n, H, k)
         self.scenarios: dict[str, dict[str, np.ndarray]] = {}  # scenario -> signal -> (n, H, k)
         self.capacity: dict[str, np.ndarray] = {}  # signal -> (n,) aligned to its block
+        self.dispersion: dict[str, np.ndarray] = {}  # signal -> (n,) count-noise sizes
         self.drift: dict[str, float] = {}
         self.skipped: list[str] = []
         self.lines: list[str] = []
@@ -306,6 +317,7 @@ def forecast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings,
         nq = nowcast_quantiles(con, run_id, signal, block)
         corrected[signal] = (median_corrected(np.nan_to_num(block.values), *nq), nq)
         run.drift[signal] = _rt_drift(con, run_id, signal, settings.for_signal(signal))
+        run.dispersion[signal] = _noise_sizes(corrected[signal][0], settings.for_signal(signal))
     if "compartmental" in wanted or ("renewal" in wanted and
                                      settings.get("renewal_depletion")):
         _run_compartmental(run, blocks, corrected, publish="compartmental" in wanted)
@@ -346,7 +358,7 @@ def _run_renewal(run: _Run, signal: str, block: SeriesBlock, y: np.ndarray,
     eventual, rep, start = nowcast_draws_for(con, run.run_id, signal, block, n_draws, seed)
     values = np.nan_to_num(block.values)
     pooled_r = _pooled_r(values, eventual, rep, start, cfg, signal)
-    dispersion = estimate_dispersion(y)
+    dispersion = run.dispersion[signal]
     capacity = run.capacity.get(signal, np.full(len(block.regions), np.nan))
     if not cfg["renewal_depletion"]:
         capacity = np.full(len(block.regions), np.nan)
@@ -422,6 +434,7 @@ def _run_compartmental(run: _Run, blocks: dict[str, SeriesBlock],
     first_day = run.as_of - dt.timedelta(days=n_days - 1)
     series: dict[str, np.ndarray] = {}
     prior: dict[str, np.ndarray] = {}
+    noise: dict[str, np.ndarray] = {}
     for s in sigs:
         block = blocks[s]
         y = corrected[s][0]
@@ -430,6 +443,8 @@ def _run_compartmental(run: _Run, blocks: dict[str, SeriesBlock],
         take = y[:, -n_days:]
         arr[pos, n_days - take.shape[1]:] = take
         series[s] = arr
+        noise[s] = np.full(len(regions), np.nan)
+        noise[s][pos] = run.dispersion[s]
         prior[s] = _history_totals(con, run.run_id, first_day, s, regions)
     pop, pop_missing = _populations(con, regions)
     imm_regions = dict(cfg["immune_fraction_regions"])
@@ -441,7 +456,8 @@ def _run_compartmental(run: _Run, blocks: dict[str, SeriesBlock],
         if publish else []
     jobs = [({s: series[s][p] for s in sigs}, pop[p], _init_batch(init[p]),
              {s: prior[s][p] for s in sigs}, immune[p], cfg, seeds[p], run.drift[sigs[0]],
-             [(name, m[p]) for name, m in scen]) for p in parts]
+             [(name, m[p]) for name, m in scen], {s: noise[s][p] for s in sigs})
+            for p in parts]
     res = run.mapper(_compartmental_job, jobs)
     h, k = int(cfg["horizon_days"]), len(cfg["quantiles"])
     per_signal = {s: np.full((len(regions), h, k), np.nan) for s in sigs}

@@ -81,7 +81,7 @@ SPEC: dict[str, Setting] = {
                         "ceiling of the estimate (and its value when R_t history is too short)"),
     "drift_from_rt": Setting(True, "estimate that drift from the run's R_t history, pooled over "
                              "the signal's regions"),
-    "renewal_damping_days": Setting(21.0, "renewal projection: half-life of log R_t toward 0 "
+    "renewal_damping_days": Setting(14.0, "renewal projection: half-life of log R_t toward 0 "
                                     "(R toward 1) beyond the data; 0 = no damping"),
     "renewal_depletion": Setting(True, "renewal projection: deplete susceptibles, with the pool "
                                  "and the signal's reporting fraction from the compartmental fit"),

@@ -141,10 +141,16 @@ def test_estimate_log_r_drift_recovers_random_walk_sd() -> None:
     n, t, sd = 300, 120, 0.02
     log_r = np.cumsum(rng.normal(0, sd, (n, t)), axis=1)
     noisy = log_r + rng.normal(0, 0.05, (n, t))
-    est = estimate_log_r_drift(np.exp(noisy), np.full((n, t), 0.05), lag=7)
-    assert est == pytest.approx(sd, rel=0.15)
+    for robust in (True, False):
+        est = estimate_log_r_drift(np.exp(noisy), np.full((n, t), 0.05), lag=7, robust=robust)
+        assert est == pytest.approx(sd, rel=0.15)
     naive = estimate_log_r_drift(np.exp(noisy), None, lag=7)
     assert naive > 1.4 * sd  # without the correction the noise is taken for drift
+    # one intervention (log R falls by 0.7 in a day) in every series: a jump, not a drift;
+    # the robust scale barely moves, the mean square is dominated by it
+    jump = noisy - 0.7 * (np.arange(t) >= 60)[None, :]
+    assert estimate_log_r_drift(np.exp(jump), np.full((n, t), 0.05)) < 1.3 * sd  # 1.22
+    assert estimate_log_r_drift(np.exp(jump), np.full((n, t), 0.05), robust=False) > 2 * sd
     assert estimate_log_r_drift(np.ones((2, 5)), None) == 0.08  # too short: the ceiling
 
 
