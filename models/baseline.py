@@ -46,6 +46,24 @@ def _trailing_mean(y: np.ndarray, width: int) -> np.ndarray:
     return out
 
 
+def _symmetric_quantiles(e: np.ndarray, q: np.ndarray) -> np.ndarray:
+    """Quantiles (numpy's linear method) of {e, -e} along the last axis, NaN skipped; 0 where a
+    row has no finite value (no observed change: no spread).  Vectorised (numpy's nanquantile
+    works row by row)."""
+    sym = np.concatenate([e, -e], axis=-1)
+    srt = np.sort(np.where(np.isfinite(sym), sym, np.inf), axis=-1)
+    n = np.isfinite(srt).sum(axis=-1)  # (..., )
+    pos = (np.maximum(n, 1) - 1)[..., None] * q  # (..., k)
+    lo = np.floor(pos).astype(int)
+    hi = np.minimum(lo + 1, np.maximum(n - 1, 0)[..., None])
+    frac = pos - lo
+    a = np.take_along_axis(srt, lo, axis=-1)
+    b = np.take_along_axis(srt, hi, axis=-1)
+    with np.errstate(invalid="ignore"):  # rows without any value: inf - inf, replaced below
+        out = a + frac * (b - a)
+    return np.where(n[..., None] > 0, out, 0.0)
+
+
 class FlatBaseline:
     """Flat baseline: median = recent level, spread = symmetrised observed h-step changes.
 
@@ -134,11 +152,7 @@ class FlatBaseline:
         if q.ndim != 1 or np.any((q <= 0) | (q >= 1)) or np.any(np.diff(q) <= 0):
             raise ValueError("levels must be increasing probabilities in (0, 1)")
         e = self.changes(horizon)
-        sym = np.concatenate([e, -e], axis=-1)
-        have = np.isfinite(sym).any(axis=-1)
-        sym = np.where(have[..., None], sym, 0.0)  # no observed change: no spread
-        with np.errstate(invalid="ignore"):
-            dev = np.moveaxis(np.nanquantile(sym, q, axis=-1), 0, -1)  # (n, H, k)
+        dev = _symmetric_quantiles(e, q)  # (n, H, k)
         lev = self.level_[:, None, None]
         if self.scale == "relative":
             vals = (lev + 1.0) * np.exp(dev) - 1.0
