@@ -1354,9 +1354,9 @@ class CompartmentalModel:
         sigma, gamma, direct = self._rates()
         regions = np.arange(n_reg)
         beta_fit = self._beta_path(self.theta_, None)[:, :s0]
-        states, inc_fit, _, _, _ = _integrate(
+        states, inc_fit, _, _, _ = _integrate(  # full: R and D too, so S+E+I+R+D stays N
             self._initial_state(self.theta_, regions), beta_fit, sigma, gamma, float(self.ifr),
-            direct, self.method, self._n_sub, record=True, full=False)
+            direct, self.method, self._n_sub, record=True, full=True)
         assert states is not None
         key = (horizon, True)
         mats = lay.delay_cache.get(key)

@@ -458,6 +458,19 @@ def test_parameter_at_a_bound_keeps_its_spread(fitted: tuple) -> None:
     np.testing.assert_allclose(draws.std(axis=1) / s, np.sqrt(1 - 2 / np.pi), rtol=0.1)
 
 
+def test_forecast_draws_continue_the_fitted_path(fitted: tuple) -> None:
+    # the draws restart from the fitted state two weeks back: at the fitted parameters and a
+    # flat future the continuation must equal one run of the whole path
+    model = fitted[0]
+    lay = model._lay
+    n = model.theta_.shape[0]
+    future = np.repeat(model.theta_[:, None, lay.n_knots - 1 : lay.n_knots], 14, axis=2)
+    cont = model._future_means(model.theta_[:, None, :], future)[:, 0]
+    whole, _ = model._simulate_means(model.theta_, np.arange(n), future_log_beta=future[:, 0],
+                                     only_future=True)
+    np.testing.assert_allclose(cont, whole, rtol=1e-9)
+
+
 def test_forecast_protocol_streams_and_scenarios(truth: dict) -> None:
     from tallywave.models.base import series_seeds
 
