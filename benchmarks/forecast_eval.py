@@ -225,8 +225,8 @@ def discrete_check(scores: pd.DataFrame) -> list[str]:
     """Ensemble coverage where the forecast median is at least 10 counts.
 
     With a handful of counts, a closed interval between two quantiles of a discrete forecast
-    covers more than its nominal share even when the forecast is exactly right (a Poisson(1)
-    forecast's 25 %-75 % interval [0, 1] holds 74 % of outcomes), so coverage on small counts
+    covers more than its nominal share even when the forecast is exactly right (a Poisson(0.7)
+    forecast's 25 %-75 % interval [0, 1] holds 84 % of outcomes), so coverage on small counts
     overstates the width; conditioning on the forecast (never on the outcome) isolates that.
     """
     lines = []

@@ -43,7 +43,7 @@ def test_growth_coverage_holds_at_long_horizons() -> None:
     model = FlatBaseline().fit(y[:, :120])
     cov = _coverage(model, y[:, 120:148], 28)
     print("\n90% coverage under growth by horizon:", cov[[0, 6, 13, 20, 27]].round(2))
-    assert cov[27] >= 0.75 and cov.min() >= 0.75  # measured 0.89 at 28 days, min 0.86
+    assert cov[27] >= 0.75 and cov.min() >= 0.75  # measured 0.96 at 28 days, min 0.92
     med = model.forecast(28, Q).values[..., 4]
     assert np.allclose(med, med[:, :1])  # flat: the baseline never extrapolates the trend
 

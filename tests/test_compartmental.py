@@ -362,9 +362,9 @@ def test_default_stepping_growth_and_peak_against_solve_ivp() -> None:
     print("\ngrowth / peak day: reference", round(g_ref, 4), round(p_ref, 2),
           {m: (round(g, 4), round(p, 2)) for m, (g, p) in results.items()})
     g, p = results["rk4"]
-    assert abs(g / g_ref - 1.0) < 0.002 and abs(p - p_ref) < 0.25  # measured 2e-5, 0.01 d
+    assert abs(g / g_ref - 1.0) < 0.002 and abs(p - p_ref) < 0.25  # measured < 1e-4, < 0.01 d
     g_e, p_e = results["euler"]
-    assert g_e < 0.97 * g_ref and p_e > p_ref + 1.5  # measured 3.6 % slow, 2.5 days late
+    assert g_e < 0.97 * g_ref and p_e > p_ref + 1.5  # measured 4.8 % slow, 4.8 days late
     assert CompartmentalModel().method == "rk4"
 
 
