@@ -80,6 +80,13 @@ SPEC: dict[str, Setting] = {
                                ("median", "mean")),
     # ---- scoring ----
     "settle_days": Setting(14, "truth counts as settled this many days after the target date"),
+    # ---- retention ----
+    "retention_days": Setting(42, "`tallywave prune` keeps every output of the runs of this many "
+                              "days before the newest published run (default: horizon + "
+                              "settle days, so a forecast's context stays until it is scored); "
+                              "older and superseded runs keep their forecasts and fits only"),
+    "prune_after_run": Setting(False, "apply the retention policy after every published run "
+                               "(without shrinking the file: freed space is reused)"),
     # ---- run ----
     "seed": Setting(20260302, "random seed: runs are reproducible"),
     "batch_regions": Setting(250, "regions per parallel task (never changes the results)"),
