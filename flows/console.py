@@ -56,7 +56,11 @@ def route_logs(path: Path, *, verbose: bool = False) -> Path:
         _LOG_FORMAT, _DATE_FORMAT,
         flow_run_fmt="%(asctime)s | %(levelname)-7s | flow run %(flow_run_name)r - %(message)s",
         task_run_fmt="%(asctime)s | %(levelname)-7s | task run %(task_run_name)r - %(message)s"))
+    handler.set_name("tallywave-log-file")
     root = logging.getLogger()
+    for old in [h for h in root.handlers if h.get_name() == handler.get_name()]:
+        root.removeHandler(old)  # a second command in the same process: one file at a time
+        old.close()
     root.addHandler(handler)
     logging.getLogger("tallywave").setLevel(logging.INFO)
     if verbose:

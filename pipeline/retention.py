@@ -188,11 +188,14 @@ def prune(path: str | os.PathLike, *, keep_days: int, dry_run: bool = False,
     plan = res["plan"]
     reasons = ", ".join(f"{n} {r}" for r, n in plan["reason"].value_counts().items())
     what = "would drop" if dry_run else "dropped"
-    line = (f"{what} the intermediate outputs of {len(plan)} run(s)"
-            + (f" ({reasons})" if reasons else "")
-            + ("" if dry_run else f": {res['rows']:,} rows")
-            + f"; kept every run's forecasts and fits and all outputs of runs from the last "
-              f"{keep_days} days; file {before:.1f} MB → {after:.1f} MB")
+    if plan.empty:
+        line = (f"nothing to drop (every run's outputs are within the last {keep_days} days or "
+                f"already pruned); file {before:.1f} MB → {after:.1f} MB")
+    else:
+        line = (f"{what} the intermediate outputs of {len(plan)} run(s) ({reasons})"
+                + ("" if dry_run else f": {res['rows']:,} rows")
+                + f"; kept every run's forecasts and fits and all outputs of runs from the last "
+                  f"{keep_days} days; file {before:.1f} MB → {after:.1f} MB")
     if not compact and not dry_run and res["rows"]:
         line += " (freed space is reused by later runs; --compact shrinks the file)"
     if logs:

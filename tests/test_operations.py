@@ -349,3 +349,15 @@ def test_prune_verb_one_line(history, tmp_path, capsys) -> None:
     assert not old.exists() and new.exists()
     assert main(["--db", str(db), "prune", "--keep-days", "-1"]) == 2
     assert "tallywave: error: --keep-days -1" in capsys.readouterr().err
+
+
+@pytest.mark.benchmark
+def test_storage_benchmark_smoke(tmp_path, capsys) -> None:
+    """The storage benchmark runs end to end at a toy size (figures are not checked)."""
+    from benchmarks.operations import main
+
+    assert main(["storage", "--regions", "2", "--runs", "2", "--days", "80", "--keep-days", "0",
+                 "--out", str(tmp_path)]) == 0
+    out = capsys.readouterr().out
+    for key in ("none", "prune_after_run", "prune 0 d + compact", "rows (no retention"):
+        assert key in out, out
