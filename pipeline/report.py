@@ -1,11 +1,17 @@
 """Stage 8 — the daily report: one published run → a self-contained HTML page plus PNG figures.
 
 The report only reads (plain SELECTs with bound parameters, then pandas), so it works on a
-read-only DuckDB connection.  Layout of ``out_dir/<as_of>_<run_id>/``: ``index.html`` and
-``figures/*.png`` (one three-panel PNG per region × signal, referenced by relative path).  Text
-taken from the database is HTML-escaped; figure file names are an ASCII slug plus a short hash, so
-any region name works.  ``max_regions`` bounds the figures for very large runs: only the regions
-ranked highest by growth get figures, every region stays in the growth table.
+read-only DuckDB connection.  Layout of ``out_dir/<run_id>/`` (the run id starts with the as-of
+date): ``index.html`` and ``figures/*.png`` (one PNG per region × signal with the panels of
+:data:`PANELS`, referenced by relative path).  Text taken from the database is HTML-escaped;
+figure file names are an ASCII slug plus a short hash, so any region name works.  ``max_regions``
+bounds the figures for very large runs: only the regions ranked highest by growth get figures,
+every region stays in the growth table.
+
+The page is the list :data:`SECTIONS`; a stage adds its own block with a builder reading what it
+needs through the shared :class:`ReportContext`, e.g.::
+
+    add_section(Section("delays", "Delays", "Reporting delays", _delays_html), before="accuracy")
 """
 
 from __future__ import annotations
