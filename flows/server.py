@@ -19,7 +19,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from tallywave.pipeline.errors import RunFailed
+from tallywave.pipeline.errors import RunFailed, UserError
 
 STARTUP_ENV = "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS"
 #: Seconds a temporary server is given to start when the environment does not say (Prefect: 20).
@@ -47,8 +47,7 @@ def startup_timeout() -> int:
         try:
             value = int(float(text))
         except ValueError:
-            raise OrchestrationUnavailable(f"{STARTUP_ENV}='{text}' is not a number of seconds"
-                                           ) from None
+            raise UserError(f"{STARTUP_ENV}='{text}' is not a number of seconds") from None
         return max(1, value)
     from prefect.settings import PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS
 
