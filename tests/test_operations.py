@@ -50,8 +50,8 @@ def test_run_publishes_on_a_busy_machine(template, fresh_db, tmp_path) -> None:
     Prefect server (no PREFECT_API_URL): the run waits for the server and publishes."""
     db = fresh_db()
     settings = tmp_path / "s.toml"
-    settings.write_text("[defaults]\nforecast_draws = 60\nnowcast_draws = 60\n"
-                        'models = ["baseline", "renewal", "ensemble"]\n')
+    settings.write_text("[defaults]\nforecast_draws = 40\nnowcast_draws = 40\n"
+                        'models = ["baseline"]\n')
     env = cli_env()
     env.pop("PREFECT_API_URL", None)
     burners = [subprocess.Popen([sys.executable, "-c", BURN]) for _ in range(BURNERS)]
@@ -114,18 +114,28 @@ def test_server_start_is_retried_then_fails_in_one_line(monkeypatch, tmp_path) -
     assert srv.startup_timeout() >= srv.DEFAULT_STARTUP_S  # never Prefect's 20 s default
 
 
-def test_failed_server_start_exits_5_in_one_line(template, fresh_db) -> None:
-    """The real temporary server cannot answer within 1 s: exit 5, one line, no traceback."""
+def test_failed_server_start_exits_5_in_one_line(template, fresh_db, monkeypatch, tmp_path,
+                                                 capsys) -> None:
+    """The command maps a Prefect API that cannot be reached to exit 5 and one line ending with
+    the log file, before any stage runs (the start-up itself: the test above)."""
+    from tallywave.flows import console, server
+    from tallywave.pipeline.cli import main
+
     db = fresh_db()
-    env = cli_env(PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS="1")
-    env.pop("PREFECT_API_URL", None)
-    res = subprocess.run([TALLYWAVE, "--db", str(db), "run", "--as-of",
-                          template["last"].isoformat()], capture_output=True, text=True,
-                         env=env, timeout=300, check=False)
-    lines = _lines(res.stderr)
-    assert res.returncode == 5, res.stderr[-2000:]
-    assert len(lines) == 1 and lines[0].startswith("tallywave: error: "), res.stderr
-    assert "PREFECT_API_URL" in lines[0] and "(log: " in lines[0]
+    log = tmp_path / "logs" / "x.log"
+    monkeypatch.setattr(console, "route_logs", lambda path, verbose=False: log)
+
+    def no_server(log_file=None):
+        raise server.OrchestrationUnavailable("the temporary Prefect server did not start "
+                                              "within 1 s, twice (machine busy?): ...")
+
+    monkeypatch.setattr(server, "ensure_api", no_server)
+    code = main(["--db", str(db), "run", "--as-of", template["last"].isoformat()])
+    captured = capsys.readouterr()
+    lines = _lines(captured.err)
+    assert code == 5 and captured.out == ""
+    assert len(lines) == 1 and lines[0].startswith("tallywave: error: the temporary Prefect")
+    assert lines[0].endswith(f"(log: {log})")
     assert _published(db) == []
 
 
