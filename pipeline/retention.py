@@ -16,8 +16,8 @@ keeps its ``out.runs`` row; ``out.pruned_runs`` says when and why its intermedia
 each table keeps its meaning (``core.cleaned`` holds the full series of every run it holds).
 
 DuckDB reuses the space of deleted rows for later inserts but does not shrink the file; with
-``compact=True`` (:func:`compact_file`) the database is copied into a fresh file (``COPY FROM DATABASE``) that replaces
-the old one, so the file shrinks.
+``compact=True`` (:func:`compact_file`) the database is copied into a fresh file
+(``COPY FROM DATABASE``) that replaces the old one, so the file shrinks.
 """
 
 from __future__ import annotations

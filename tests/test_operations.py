@@ -268,8 +268,9 @@ def test_prune_keeps_what_published_forecasts_need(history, tmp_path) -> None:
     plan = prune_plan(con, 10)
     con.close()
     reasons = dict(zip(plan["run_id"], plan["reason"], strict=True))
-    # the run 21 days before the newest is old (its 1-7 day forecasts are scored), the first run of the last date was
-    # superseded, the inspection has no run record; the 7-day-old run and the newest stay
+    # the run 21 days before the newest is old (its 1-7 day forecasts are scored), the first
+    # run of the last date was superseded, the inspection has no run record; the 7-day-old run
+    # and the newest stay
     assert reasons == {ids[0]: "older than 10 days", ids[2]: "superseded",
                        f"clean-{history['days'][-1]}": "no run record"}
     dry = prune(db, keep_days=10, dry_run=True)
