@@ -140,7 +140,7 @@ def bench_storage(args: argparse.Namespace) -> dict[str, Any]:
           file=sys.stderr)
     out: dict[str, Any] = {"regions": args.regions, "runs": args.runs,
                            "ingested_mb": _size_mb(base), "keep_days": args.keep_days}
-    for policy in ("none", "prune_after_run"):
+    for policy in args.policies.split(","):
         db = tmp / f"{policy}.duckdb"
         shutil.copy(base, db)
         s = load_settings(settings)
@@ -195,6 +195,9 @@ def main(argv: list[str] | None = None) -> int:
     s.add_argument("--snapshots", type=int)
     s.add_argument("--keep-days", type=int, default=None,
                    help="retention window (default: the setting retention_days)")
+    s.add_argument("--policies", default="none,prune_after_run",
+                   help="none (no retention; then prune the copies at the end) and/or "
+                        "prune_after_run, comma-separated")
     for p in (r, s):
         p.add_argument("--out", help="folder for temporary files (default: system temp)")
         p.add_argument("--keep", action="store_true", help="keep the temporary folder")
@@ -212,15 +215,16 @@ def main(argv: list[str] | None = None) -> int:
         res = bench_storage(args)
         print(f"storage, {res['regions']} regions, {res['runs']} daily runs "
               f"(ingested feeds {res['ingested_mb']:.1f} MB); retention {res['keep_days']} d")
-        for policy in ("none", "prune_after_run"):
+        policies = [p for p in ("none", "prune_after_run") if p in res]
+        for policy in policies:
             sizes = ", ".join(f"{k}: {mb:.1f}" for k, mb in res[policy]["sizes"])
             print(f"  {policy:16s} MB after runs {sizes} ({res[policy]['s_per_run']:.1f} s/run)")
         for key, v in res.items():
             if key.startswith("prune "):
                 print(f"  {key:18s} {v['mb']:.1f} MB in {v['seconds']:.1f} s — {v['line']}")
-        print("  rows (no retention → prune after every run): " + ", ".join(
-            f"{t} {n:,} → {res['prune_after_run']['rows'][t]:,}"
-            for t, n in res["none"]["rows"].items()))
+        for policy in policies:
+            print(f"  rows ({policy}): " + ", ".join(
+                f"{t} {n:,}" for t, n in res[policy]["rows"].items()))
     return 0
 
 

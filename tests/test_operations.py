@@ -370,5 +370,5 @@ def test_storage_benchmark_smoke(tmp_path, capsys) -> None:
     assert main(["storage", "--regions", "2", "--runs", "2", "--days", "80", "--keep-days", "0",
                  "--out", str(tmp_path)]) == 0
     out = capsys.readouterr().out
-    for key in ("none", "prune_after_run", "prune 0 d + compact", "rows (no retention"):
+    for key in ("none", "prune_after_run", "prune 0 d + compact", "rows (none)"):
         assert key in out, out
