@@ -5,12 +5,15 @@ from __future__ import annotations
 
 import datetime as dt
 import os
+from collections.abc import Callable
+from pathlib import Path
 from typing import Any
 
 from prefect import flow, get_run_logger, task
 from prefect.cache_policies import NO_CACHE
 from prefect.tasks import exponential_backoff
 
+from tallywave.flows import console
 from tallywave.flows.runners import make_task_runner, prefect_mapper
 from tallywave.pipeline import store
 from tallywave.pipeline.ingest import ingest_spec
@@ -28,9 +31,40 @@ def ingest_feed(con: Any, spec: str) -> str:
     return f"{spec}: {summary.line()}"
 
 
-def _logger_say() -> Any:
+def _logger_say() -> Callable[[str], None]:
+    """Progress messages go to the flow's log (file, Prefect UI) and to the command's console."""
     log = get_run_logger()
-    return log.info
+    show = console.current().message
+
+    def say(msg: str) -> None:
+        log.info(msg)
+        show(msg)
+
+    return say
+
+
+#: Connections a command opened before starting a flow, by resolved database path.
+_HANDED: dict[Path, Any] = {}
+
+
+def hand_over(db: str | None, con: Any) -> None:
+    """Give the next flow on ``db`` a connection the command already holds: the write lock is
+    then taken before Prefect starts, so a second command waiting for it fails (exit 3) in one
+    line instead of inside a flow."""
+    _HANDED[store.db_path(db).resolve()] = con
+
+
+def release(db: str | None) -> None:
+    """Close a handed-over connection no flow took (the flow failed to start)."""
+    con = _HANDED.pop(store.db_path(db).resolve(), None)
+    if con is not None:
+        con.close()
+
+
+def open_db(db: str | None) -> Any:
+    """The handed-over connection of ``db`` if any, else a new one (the flow closes it)."""
+    con = _HANDED.pop(store.db_path(db).resolve(), None)
+    return con if con is not None else store.connect(db)
 
 
 def run_one(con: Any, as_of: dt.date, settings_path: str | None, *, specs: list[str] | None = None,
@@ -50,6 +84,12 @@ def run_one(con: Any, as_of: dt.date, settings_path: str | None, *, specs: list[
 
         result["report"] = str(write_report(con, as_of=as_of, out_dir=report_dir))
         say(f"report: {result['report']}")
+    if settings.get("prune_after_run"):
+        from tallywave.pipeline.retention import prune_connection
+
+        pruned = prune_connection(con, int(settings.get("retention_days")))
+        say(f"retention: dropped the intermediate outputs of {len(pruned['plan'])} run(s), "
+            f"{pruned['rows']:,} rows")
     return result
 
 
@@ -57,12 +97,13 @@ def _daily(as_of: str | None = None, db: str | None = None, specs: list[str] | N
            settings: str | None = None, report: bool = True,
            report_dir: str = "reports") -> dict[str, Any]:
     day = dt.date.fromisoformat(as_of) if as_of else dt.date.today()
-    con = store.connect(db)
+    con = open_db(db)
     try:
         result = run_one(con, day, settings, specs=specs, report=report, report_dir=report_dir)
     finally:
         con.close()
-    return {"run_id": result["run_id"], "line": result["line"], "report": result.get("report")}
+    return {"run_id": result["run_id"], "line": result["line"], "report": result.get("report"),
+            "as_of": str(result["as_of"]), "seconds": result["seconds"]}
 
 
 daily_flow = flow(name="tallywave-daily", log_prints=True)(_daily)

@@ -10,10 +10,14 @@ from __future__ import annotations
 
 import argparse
 import datetime as dt
+import logging
 import os
 import sys
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
-from typing import NoReturn
+from typing import Any, NoReturn
 
 from tallywave.pipeline.errors import RunFailed, UserError
 
@@ -46,9 +50,41 @@ def _check_database(db: str | None) -> None:
     store.connect(db).close()
 
 
+#: The log file of this command once :func:`_orchestrated` routed the logs there.
+_LOG: dict[str, Path] = {}
+
+
+@contextmanager
+def _orchestrated(args: argparse.Namespace) -> Iterator[Any]:
+    """Around a command that runs flows: logs to the database's log file, the quiet console,
+    and a Prefect API that answers before any work starts (exit 5 in one line if none)."""
+    from tallywave.flows import console as tc
+    from tallywave.flows.server import ensure_api
+
+    verbose = bool(getattr(args, "verbose", False))
+    path = tc.route_logs(tc.log_path(args.db), verbose=verbose)
+    _LOG["path"] = path
+    shown = tc.Console(verbose=verbose)
+    with tc.active(shown):
+        t0 = time.monotonic()
+        with shown.step("starting Prefect …"):
+            url = ensure_api(None if verbose else path)
+        took = time.monotonic() - t0
+        logging.getLogger("tallywave").info(f"Prefect API {url} ready after {took:.1f} s")
+        if took > tc.SLOW_START_S:
+            shown.line(f"note: the temporary Prefect server took {took:.0f} s to start; a "
+                       "long-lived one avoids that (README: Operations)")
+        yield shown
+
+
 class _Parser(argparse.ArgumentParser):
     def error(self, message: str) -> NoReturn:  # one line, exit 2, like every other user error
         raise UserError(f"{self.prog}: {message}")
+
+
+def _verbose(p: argparse.ArgumentParser) -> None:
+    p.add_argument("-v", "--verbose", action="store_true",
+                   help="also print Prefect's orchestration log (always in the log file)")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -65,6 +101,7 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--days", type=int, default=21, help="as-of dates to backfill (default 21)")
     d.add_argument("--settings", help="settings TOML")
     d.add_argument("--runner", default="local", choices=["local", "threads", "processes", "dask"])
+    _verbose(d)
 
     s = sub.add_parser("simulate", help="write a synthetic scenario's feeds and truth")
     s.add_argument("--out", default=DEMO_DIR, help="output folder (default sample_feeds)")
@@ -86,6 +123,7 @@ def build_parser() -> argparse.ArgumentParser:
         r.add_argument("--runner", default="local", choices=["local", "threads", "processes", "dask"])
         r.add_argument("--address", help="existing Dask scheduler, tcp://host:port")
         r.add_argument("--no-report", action="store_true", help="skip the HTML report")
+        _verbose(r)
 
     b = sub.add_parser("backfill", help="run every as-of date in a range, then score")
     b.add_argument("--start", type=_date, required=True)
@@ -93,6 +131,7 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--settings")
     b.add_argument("--runner", default="local", choices=["local", "threads", "processes", "dask"])
     b.add_argument("--address", help="existing Dask scheduler, tcp://host:port")
+    _verbose(b)
 
     sc = sub.add_parser("score", help="score every published forecast against the data now known")
     sc.add_argument("--as-of", type=_date, default=None, help="truth known on (default latest)")
@@ -117,6 +156,16 @@ def build_parser() -> argparse.ArgumentParser:
     sv.add_argument("--settings")
     sv.add_argument("--runner", default="local", choices=["local", "threads", "processes", "dask"])
     sv.add_argument("--address")
+
+    pr = sub.add_parser("prune", help="drop superseded and old runs' intermediate outputs "
+                                      "(retention); forecasts and fits stay")
+    pr.add_argument("--keep-days", type=int, default=None, metavar="DAYS",
+                    help="keep every output of runs this many days before the newest published "
+                         "run (default: setting retention_days)")
+    pr.add_argument("--settings")
+    pr.add_argument("--dry-run", action="store_true", help="say what would go, change nothing")
+    pr.add_argument("--compact", action="store_true",
+                    help="also rewrite the file so it shrinks on disk (needs room for a copy)")
 
     cl = sub.add_parser("clean", help="run only the cleaning stage for one as-of date (no run)")
     cl.add_argument("--as-of", type=_date, default=None)
@@ -171,25 +220,48 @@ def cmd_export(args: argparse.Namespace) -> int:
 
 
 def cmd_run(args: argparse.Namespace) -> int:
-    from tallywave.flows.daily import daily
+    from tallywave.pipeline import store
 
     as_of = args.as_of or dt.date.today()
-    _check_database(args.db)
-    result = daily(as_of=as_of.isoformat(), db=args.db, specs=args.spec, settings=args.settings,
-                   runner=args.runner, address=args.address, report=not args.no_report)
-    print(result["line"])
+    _check_database(args.db)  # busy or unusable: one line before Prefect starts
+    with _orchestrated(args):
+        from tallywave.flows.daily import daily, hand_over, release
+
+        hand_over(args.db, store.connect(args.db))  # the lock is ours from here on
+        try:
+            result = daily(as_of=as_of.isoformat(), db=args.db, specs=args.spec,
+                           settings=args.settings, runner=args.runner, address=args.address,
+                           report=not args.no_report)
+        finally:
+            release(args.db)
+    print(result["line"] if args.verbose else
+          f"published run {result['run_id']} (as of {result['as_of']}) in "
+          f"{result['seconds']:.1f} s")
+    if result.get("report"):
+        print(f"report: {result['report']}")
+    print(f"log: {_LOG['path']}")
     return 0
 
 
 def cmd_backfill(args: argparse.Namespace) -> int:
-    from tallywave.flows.backfill import backfill
+    from tallywave.pipeline import store
 
     if args.end < args.start:
         raise UserError("--end is before --start")
     _check_database(args.db)
-    result = backfill(start=args.start.isoformat(), end=args.end.isoformat(), db=args.db,
-                      settings=args.settings, runner=args.runner, address=args.address)
+    with _orchestrated(args):
+        from tallywave.flows.backfill import backfill
+        from tallywave.flows.daily import hand_over, release
+
+        hand_over(args.db, store.connect(args.db))
+        try:
+            result = backfill(start=args.start.isoformat(), end=args.end.isoformat(),
+                              db=args.db, settings=args.settings, runner=args.runner,
+                              address=args.address)
+        finally:
+            release(args.db)
     print(result["line"])
+    print(f"log: {_LOG['path']}")
     return 0
 
 
@@ -229,17 +301,40 @@ def cmd_clean(args: argparse.Namespace) -> int:
 def cmd_serve(args: argparse.Namespace) -> int:
     from tallywave.flows.daily import serve_daily
 
-    serve_daily(cron=args.cron, timezone=args.timezone, db=args.db, specs=args.spec,
+    args.verbose = True  # a service's console is its log: keep Prefect's lines there too
+    with _orchestrated(args):
+        serve_daily(cron=args.cron, timezone=args.timezone, db=args.db, specs=args.spec,
                 settings=args.settings, runner=args.runner, address=args.address)
     return 0
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    from tallywave.flows.backfill import demo
+    _check_database(args.db)
+    with _orchestrated(args):
+        from tallywave.flows.backfill import demo
 
-    result = demo(feeds=args.feeds, db=args.db, days=args.days, settings=args.settings,
-                  runner=args.runner)
+        result = demo(feeds=args.feeds, db=args.db, days=args.days, settings=args.settings,
+                      runner=args.runner)
     print(result["text"])
+    print(f"log: {_LOG['path']}")
+    return 0
+
+
+def cmd_prune(args: argparse.Namespace) -> int:
+    from tallywave.flows.console import LOG_DIR
+    from tallywave.pipeline import store
+    from tallywave.pipeline.retention import prune
+    from tallywave.pipeline.settings import load_settings
+
+    keep = args.keep_days
+    if keep is None:
+        keep = int(load_settings(args.settings).get("retention_days"))
+    if keep < 0:
+        raise UserError(f"--keep-days {keep}: must be 0 or more")
+    summary = prune(store.db_path(args.db), keep_days=keep, dry_run=args.dry_run,
+                    compact=args.compact, log_dir=store.db_path(args.db).resolve().parent
+                    / LOG_DIR)
+    print(summary["line"])
     return 0
 
 
@@ -253,7 +348,7 @@ def _latest_as_of(con) -> dt.date:
 COMMANDS = {
     "simulate": cmd_simulate, "ingest": cmd_ingest, "sql": cmd_sql, "export": cmd_export,
     "run": cmd_run, "backfill": cmd_backfill, "score": cmd_score, "report": cmd_report,
-    "serve": cmd_serve, "demo": cmd_demo, "clean": cmd_clean,
+    "serve": cmd_serve, "demo": cmd_demo, "clean": cmd_clean, "prune": cmd_prune,
 }
 
 
@@ -272,7 +367,8 @@ def main(argv: list[str] | None = None) -> int:
         if debug:
             raise
         msg = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        print(f"tallywave: error: {msg}", file=sys.stderr)
+        _log_failure(f"error: {msg}", exc if isinstance(exc, RunFailed) else None)
+        print(f"tallywave: error: {msg}{_log_hint()}", file=sys.stderr)
         return exc.exit_code
     except KeyboardInterrupt:
         print("tallywave: interrupted", file=sys.stderr)
@@ -281,9 +377,24 @@ def main(argv: list[str] | None = None) -> int:
         if debug:
             raise
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
-        print(f"tallywave: internal error: {type(exc).__name__}: {first[:300]} "
-              "(set TALLYWAVE_DEBUG=1 for the traceback)", file=sys.stderr)
+        _log_failure(f"internal error: {type(exc).__name__}: {first}", exc)
+        where = f"traceback in {_LOG['path']}" if "path" in _LOG else \
+            "set TALLYWAVE_DEBUG=1 for the traceback"
+        print(f"tallywave: internal error: {type(exc).__name__}: {first[:300]} ({where})",
+              file=sys.stderr)
         return 1
+    finally:
+        _LOG.clear()
+
+
+def _log_failure(text: str, exc: BaseException | None) -> None:
+    """Write a failure (and its traceback, if any) to the command's log file, if it has one."""
+    if "path" in _LOG:
+        logging.getLogger("tallywave").error(text, exc_info=exc)
+
+
+def _log_hint() -> str:
+    return f" (log: {_LOG['path']})" if "path" in _LOG else ""
 
 
 if __name__ == "__main__":  # pragma: no cover

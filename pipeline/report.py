@@ -1,11 +1,17 @@
 """Stage 8 — the daily report: one published run → a self-contained HTML page plus PNG figures.
 
 The report only reads (plain SELECTs with bound parameters, then pandas), so it works on a
-read-only DuckDB connection.  Layout of ``out_dir/<as_of>_<run_id>/``: ``index.html`` and
-``figures/*.png`` (one three-panel PNG per region × signal, referenced by relative path).  Text
-taken from the database is HTML-escaped; figure file names are an ASCII slug plus a short hash, so
-any region name works.  ``max_regions`` bounds the figures for very large runs: only the regions
-ranked highest by growth get figures, every region stays in the growth table.
+read-only DuckDB connection.  Layout of ``out_dir/<run_id>/`` (the run id starts with the as-of
+date): ``index.html`` and ``figures/*.png`` (one PNG per region × signal with the panels of
+:data:`PANELS`, referenced by relative path).  Text taken from the database is HTML-escaped;
+figure file names are an ASCII slug plus a short hash, so any region name works.  ``max_regions``
+bounds the figures for very large runs: only the regions ranked highest by growth get figures,
+every region stays in the growth table.
+
+The page is the list :data:`SECTIONS`; a stage adds its own block with a builder reading what it
+needs through the shared :class:`ReportContext`, e.g.::
+
+    add_section(Section("delays", "Delays", "Reporting delays", _delays_html), before="accuracy")
 """
 
 from __future__ import annotations
@@ -16,7 +22,8 @@ import html
 import math
 import re
 import unicodedata
-from collections.abc import Iterable, Sequence
+from collections.abc import Callable, Iterable, Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -27,10 +34,16 @@ import numpy as np
 import pandas as pd
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
+from matplotlib.ticker import MaxNLocator
 
 from tallywave.pipeline.errors import UserError
 from tallywave.pipeline.report_delay import delay_alerts_html
-from tallywave.pipeline.report_forecast import draw_scenarios, forecast_sections, scenario_series
+from tallywave.pipeline.report_forecast import (
+    draw_scenarios,
+    scenario_series,
+    scenarios_html,
+    weights_html,
+)
 
 #: Days of history shown in the reported/nowcast and R_t panels.
 WINDOW_DAYS = 60
@@ -59,7 +72,7 @@ MODEL_COLOURS = {"baseline": SLATE, "renewal": AMBER, "compartmental": PLUM, "en
 EXTRA_COLOURS = [MOSS, ROSE, "#2f5d8a", "#8a6d2f"]
 
 _DEP_MARK = "◆"
-_LEGEND = {"frameon": True, "framealpha": 0.85, "edgecolor": "none", "facecolor": CARD}
+REPORTED_COLOUR = "#b9c3ca"
 _LN2 = math.log(2.0)
 
 
@@ -214,30 +227,6 @@ def _rank_regions(growth: pd.DataFrame, series: pd.DataFrame) -> list[str]:
     return ranked + rest
 
 
-def _by_series(df: pd.DataFrame) -> dict[tuple[str, str], pd.DataFrame]:
-    if df.empty:
-        return {}
-    return {(str(k[0]), str(k[1])): g for k, g in df.groupby(["region", "signal"], sort=False)}
-
-
-def _figure_data(con: duckdb.DuckDBPyConnection, run_id: str, as_of: dt.date,
-                 regions: list[str]) -> dict[str, dict[tuple[str, str], pd.DataFrame]]:
-    start = as_of - dt.timedelta(days=WINDOW_DAYS)
-    p = [run_id, start, regions]
-    where = "run_id = ? AND ref_date > ? AND list_contains(?::VARCHAR[], region)"
-    cleaned = _df(con, f"SELECT region, signal, ref_date, value_reported FROM core.cleaned "
-                       f"WHERE {where} ORDER BY ref_date", p)
-    nowcast = _df(con, f"SELECT region, signal, ref_date, q_level, value FROM out.nowcast "
-                       f"WHERE {where}", p)
-    rt = _df(con, f"SELECT region, signal, ref_date, q_level, value, mean, nowcast_dependent "
-                  f"FROM out.rt WHERE {where}", p)
-    fc = _df(con, "SELECT model, region, signal, target_date, q_level, value FROM out.forecasts "
-                  "WHERE run_id = ? AND list_contains(?::VARCHAR[], region)", [run_id, regions])
-    return {"cleaned": _by_series(cleaned), "nowcast": _by_series(nowcast),
-            "rt": _by_series(rt), "forecasts": _by_series(fc),
-            "scenarios": scenario_series(con, run_id, regions)}
-
-
 def _clean_actions(con: duckdb.DuckDBPyConnection, run_id: str
                    ) -> tuple[pd.DataFrame, pd.DataFrame]:
     counts = _df(con, """
@@ -307,16 +296,19 @@ def _accuracy(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
 
 
 # ---------------------------------------------------------------------------------------------
-# figures
+# figures: one reusable figure whose panels are emptied between series
 
-def _bands(df: pd.DataFrame | None, date_col: str) -> dict[str, Any] | None:
-    """Wide quantile arrays (median, 50% and 90% bands) at the nearest available levels."""
-    if df is None or df.empty:
+Bands = dict[str, Any]
+
+
+def _bands_wide(wide: pd.DataFrame) -> Bands | None:
+    """Median, 50% and 90% bands from a date × q_level table, at the nearest available levels."""
+    wide = wide.dropna(axis=1, how="all")
+    if wide.empty:
         return None
-    wide = df.pivot_table(index=date_col, columns="q_level", values="value", aggfunc="mean")
     wide = wide.sort_index()
     levels = wide.columns.to_numpy(dtype=float)
-    out: dict[str, Any] = {"x": wide.index.to_numpy(), "median": None, "b50": None, "b90": None}
+    out: Bands = {"x": wide.index.to_numpy(), "median": None, "b50": None, "b90": None}
     med = _nearest(levels, 0.5)
     if med is not None and abs(med - 0.5) < 0.1:
         out["median"] = wide[med].to_numpy(float)
@@ -327,130 +319,270 @@ def _bands(df: pd.DataFrame | None, date_col: str) -> dict[str, Any] | None:
     return out
 
 
+def _bands(df: pd.DataFrame | None, date_col: str) -> Bands | None:
+    """Wide quantile arrays (median, 50% and 90% bands) at the nearest available levels."""
+    if df is None or df.empty:
+        return None
+    return _bands_wide(df.pivot_table(index=date_col, columns="q_level", values="value",
+                                      aggfunc="mean"))
+
+
+def _bands_by(df: pd.DataFrame, keys: list[str], date_col: str) -> dict[tuple[str, ...], Bands]:
+    """:func:`_bands` of every ``keys`` group, from one pivot of the whole table (a pivot per
+    series was an eighth of the report's time)."""
+    if df.empty:
+        return {}
+    wide = df.pivot_table(index=[*keys, date_col], columns="q_level", values="value",
+                          aggfunc="mean")
+    levels = list(range(len(keys)))
+    out: dict[tuple[str, ...], Bands] = {}
+    for k, g in wide.groupby(level=levels, sort=False):
+        b = _bands_wide(g.droplevel(levels))
+        if b is not None:
+            out[tuple(str(x) for x in k)] = b
+    return out
+
+
+@dataclass
+class SeriesData:
+    """What the panels of one region × signal figure draw."""
+
+    region: str
+    signal: str
+    as_of: dt.date
+    reported: pd.DataFrame | None = None  # ref_date, value_reported: the last WINDOW_DAYS
+    nowcast: Bands | None = None
+    rt: Bands | None = None
+    rt_dependent: np.ndarray | None = None  # per date of ``rt["x"]``: relies on the nowcast
+    forecasts: dict[str, Bands] = field(default_factory=dict)  # model → bands
+    colours: dict[str, str] = field(default_factory=dict)  # model → colour, the same run-wide
+    scenarios: pd.DataFrame | None = None  # what-if projections (report_forecast)
+
+
+def model_colours(models: Iterable[str]) -> dict[str, str]:
+    """Colour of each model: fixed for the built-in ones, then the extra colours in name order
+    (one assignment for the whole report, so the page's key holds for every figure)."""
+    known = {m: MODEL_COLOURS[m] for m in models if m in MODEL_COLOURS}
+    others = sorted({str(m) for m in models} - set(known))
+    extra = EXTRA_COLOURS * (1 + len(others) // len(EXTRA_COLOURS))
+    return {**known, **dict(zip(others, extra[:len(others)], strict=True))}
+
+
+def _figure_data(con: duckdb.DuckDBPyConnection, run_id: str, as_of: dt.date,
+                 regions: list[str]) -> dict[tuple[str, str], SeriesData]:
+    """Everything the figures of ``regions`` draw, read with four queries."""
+    start = as_of - dt.timedelta(days=WINDOW_DAYS)
+    p = [run_id, start, regions]
+    where = "run_id = ? AND ref_date > ? AND list_contains(?::VARCHAR[], region)"
+    cleaned = _df(con, f"SELECT region, signal, ref_date, value_reported FROM core.cleaned "
+                       f"WHERE {where} ORDER BY ref_date", p)
+    nowcast = _df(con, f"SELECT region, signal, ref_date, q_level, value FROM out.nowcast "
+                       f"WHERE {where}", p)
+    rt = _df(con, f"SELECT region, signal, ref_date, q_level, value, mean, nowcast_dependent "
+                  f"FROM out.rt WHERE {where}", p)
+    fc = _df(con, "SELECT model, region, signal, target_date, q_level, value FROM out.forecasts "
+                  "WHERE run_id = ? AND list_contains(?::VARCHAR[], region)", [run_id, regions])
+    out: dict[tuple[str, str], SeriesData] = {}
+
+    def get(key: tuple[str, ...]) -> SeriesData:
+        k = (str(key[0]), str(key[1]))
+        if k not in out:
+            out[k] = SeriesData(k[0], k[1], as_of)
+        return out[k]
+
+    for key, g in (cleaned.groupby(["region", "signal"], sort=False) if not cleaned.empty
+                   else []):
+        get(key).reported = g[["ref_date", "value_reported"]]
+    for key, b in _bands_by(nowcast, ["region", "signal"], "ref_date").items():
+        get(key).nowcast = b
+    rt_bands = _bands_by(rt, ["region", "signal"], "ref_date")
+    if not rt.empty:
+        rt["dep"] = rt["nowcast_dependent"].astype("boolean").fillna(False).astype(bool)
+        per_day = rt.groupby(["region", "signal", "ref_date"], sort=True).agg(
+            mean=("mean", "mean"), dep=("dep", "max"))
+        for key, g in per_day.groupby(level=[0, 1], sort=False):
+            k = (str(key[0]), str(key[1]))
+            if k not in rt_bands:
+                continue
+            bands = rt_bands[k]
+            if bands["median"] is None:
+                bands["median"] = g["mean"].to_numpy(float)
+            get(k).rt, get(k).rt_dependent = bands, g["dep"].to_numpy(bool)
+    colours = model_colours(fc["model"].unique().tolist() if not fc.empty else [])
+    for (model, region, signal), b in _bands_by(fc, ["model", "region", "signal"],
+                                                "target_date").items():
+        get((region, signal)).forecasts[model] = b
+    for key, g in scenario_series(con, run_id, regions).items():
+        get(key).scenarios = g
+    for s in out.values():
+        s.colours = colours
+    return out
+
+
 def _title(ax: Any, title: str) -> None:
     # a plain text artist: cheaper than set_title, which re-measures the axes on every draw
     ax.text(0.0, 1.03, title, transform=ax.transAxes, ha="left", va="bottom", fontsize=9,
             color=INK)
 
 
-def _no_data(ax: Any, title: str) -> None:
-    _title(ax, title)
-    ax.text(0.5, 0.5, "no data", transform=ax.transAxes, ha="center", va="center",
-            color=SLATE, fontsize=9, style="italic")
-    ax.set_xticks([])
-    ax.set_yticks([])
-    for spine in ax.spines.values():
-        spine.set_color("#e4e1d8")
-
-
-def _style(ax: Any, title: str) -> None:
-    _title(ax, title)
+def _style(ax: Any) -> None:
+    """Set once per axes: spines, ticks, date axis, grid (kept while series are redrawn)."""
     for side in ("top", "right"):
         ax.spines[side].set_visible(False)
     for side in ("left", "bottom"):
         ax.spines[side].set_color("#c9cdd0")
     ax.tick_params(labelsize=7, colors="#3b4852", length=2)
-    loc = mdates.AutoDateLocator(minticks=3, maxticks=4)
-    ax.xaxis.set_major_locator(loc)
-    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(loc, show_offset=False))
+    # fixed ticks on the 1st and 15th: 2-5 per panel, far cheaper than an automatic locator
+    ax.xaxis.set_major_locator(mdates.MonthLocator(bymonthday=(1, 15)))
+    ax.xaxis.set_major_formatter(mdates.DateFormatter("%d %b"))
+    ax.yaxis.set_major_locator(MaxNLocator(nbins=4))
     ax.grid(axis="y", color="#eceae4", lw=0.6)
     ax.set_axisbelow(True)
 
 
-def _fan(ax: Any, b: dict[str, Any], colour: str, label: str | None) -> None:
-    x = b["x"]
+def _empty(ax: Any) -> None:
+    """Remove one series' artists from a panel, keeping the axes and their ticks (creating
+    axes and ticks anew for every figure was a third of the drawing time)."""
+    for artist in [*ax.lines, *ax.collections, *ax.patches, *ax.texts]:
+        artist.remove()
+    ax.xaxis.set_visible(True)
+    ax.yaxis.set_visible(True)
+
+
+def _no_data(ax: Any, title: str) -> None:
+    _title(ax, title)
+    ax.text(0.5, 0.5, "no data", transform=ax.transAxes, ha="center", va="center",
+            color=SLATE, fontsize=9, style="italic")
+    ax.xaxis.set_visible(False)
+    ax.yaxis.set_visible(False)
+
+
+def _limits(ax: Any, xs: list[Any], ys: list[Any], top: float | None = None) -> None:
+    """Axis limits from the plotted data (set, not autoscaled: artists are swapped in place)."""
+    days = np.concatenate([np.asarray(x).astype("datetime64[D]").ravel() for x in xs])
+    ax.set_xlim(days.min() - np.timedelta64(1, "D"), days.max() + np.timedelta64(1, "D"))
+    if top is None:
+        vals = np.concatenate([np.asarray(y, dtype=float).ravel() for y in ys] + [np.zeros(1)])
+        finite = vals[np.isfinite(vals)]
+        top = float(finite.max()) * 1.05 if finite.size and finite.max() > 0 else 1.0
+    ax.set_ylim(0.0, top)
+
+
+def _fan(ax: Any, b: Bands, colour: str) -> list[Any]:
+    """Draw a median and its bands; return the y arrays drawn (for the limits)."""
+    x, drawn = b["x"], []
     if b["b90"] is not None:
         ax.fill_between(x, *b["b90"], color=colour, alpha=0.14, lw=0)
+        drawn.append(b["b90"][1])
     if b["b50"] is not None:
         ax.fill_between(x, *b["b50"], color=colour, alpha=0.30, lw=0)
+        drawn.append(b["b50"][1])
     if b["median"] is not None:
-        ax.plot(x, b["median"], color=colour, lw=1.4, label=label)
+        ax.plot(x, b["median"], color=colour, lw=1.4)
+        drawn.append(b["median"])
+    return drawn
 
 
-def _panel_counts(ax: Any, cleaned: pd.DataFrame | None, nowcast: pd.DataFrame | None,
-                  as_of: dt.date, signal: str) -> None:
-    title = f"(a) reported {_mpl(signal)} vs nowcast"
-    nb = _bands(nowcast, "ref_date")
-    has_rep = cleaned is not None and bool(cleaned["value_reported"].notna().any())
-    if not has_rep and nb is None:
+def _has_reported(s: SeriesData) -> bool:
+    return s.reported is not None and bool(s.reported["value_reported"].notna().any())
+
+
+def _panel_counts(ax: Any, s: SeriesData) -> None:
+    """(a) reported counts as bars with the nowcast median and bands."""
+    title = f"(a) reported {_mpl(s.signal)} vs nowcast"
+    if not _has_reported(s) and s.nowcast is None:
         _no_data(ax, title)
         return
-    _style(ax, title)
-    if has_rep and cleaned is not None:
+    _title(ax, title)
+    xs: list[Any] = [np.datetime64(s.as_of)]
+    ys: list[Any] = []
+    if s.reported is not None and _has_reported(s):
+        x, y = s.reported["ref_date"].to_numpy(), s.reported["value_reported"].to_numpy(float)
         # one LineCollection instead of a bar patch per day (much faster to draw)
-        ax.vlines(cleaned["ref_date"].to_numpy(), 0, cleaned["value_reported"].to_numpy(float),
-                  color="#b9c3ca", lw=2.6, label="reported")
-    if nb is not None:
-        _fan(ax, nb, TEAL, "nowcast")
-    ax.axvline(np.datetime64(as_of), color=INK, lw=0.7, ls=":")
-    ax.set_ylim(bottom=0)
-    ax.legend(fontsize=7, loc="upper left", **_LEGEND)
+        ax.vlines(x, 0, y, color=REPORTED_COLOUR, lw=2.6)
+        xs.append(x)
+        ys.append(y)
+    if s.nowcast is not None:
+        ys += _fan(ax, s.nowcast, TEAL)
+        xs.append(s.nowcast["x"])
+    ax.axvline(np.datetime64(s.as_of), color=INK, lw=0.7, ls=":")
+    _limits(ax, xs, ys)
 
 
-def _panel_rt(ax: Any, rt: pd.DataFrame | None) -> None:
+def _panel_rt(ax: Any, s: SeriesData) -> None:
+    """(b) R_t with its bands, the R = 1 line and the nowcast-dependent days shaded."""
     title = "(b) R_t by date of infection, 50% / 90% intervals"
-    b = _bands(rt, "ref_date")
-    if b is None or rt is None:
+    b = s.rt
+    if b is None:
         _no_data(ax, title)
         return
-    _style(ax, title)
-    if b["median"] is None and "mean" in rt.columns:
-        b["median"] = rt.groupby("ref_date")["mean"].mean().sort_index().to_numpy(float)
+    _title(ax, title)
     x = b["x"]
-    if "nowcast_dependent" in rt.columns:
-        flag = rt["nowcast_dependent"].astype("boolean").fillna(False).astype(bool)
-        dep = flag.groupby(rt["ref_date"]).any().sort_index().to_numpy(bool)
-        if dep.any():
-            edges = np.flatnonzero(np.diff(np.r_[0, dep.astype(int), 0]))
-            half = np.timedelta64(12, "h")
-            for i0, i1 in zip(edges[::2], edges[1::2], strict=True):
-                ax.axvspan(x[i0] - half, x[i1 - 1] + half, color=AMBER, alpha=0.12, lw=0)
-    _fan(ax, b, PLUM, None)
+    dep = s.rt_dependent
+    if dep is not None and dep.any():
+        edges = np.flatnonzero(np.diff(np.r_[0, dep.astype(int), 0]))
+        half = np.timedelta64(12, "h")
+        for i0, i1 in zip(edges[::2], edges[1::2], strict=True):
+            ax.axvspan(x[i0] - half, x[i1 - 1] + half, color=AMBER, alpha=0.12, lw=0)
+    _fan(ax, b, PLUM)
     ax.axhline(1.0, color=INK, lw=0.8, ls="--")
     upper = b["b90"][1] if b["b90"] is not None else b["median"]
     top = np.nanmax(upper) if upper is not None and np.isfinite(upper).any() else 2.0
-    ax.set_ylim(0, float(min(4.0, max(1.5, top * 1.05))))
+    _limits(ax, [x], [], top=float(min(4.0, max(1.5, top * 1.05))))
 
 
-def _panel_forecast(ax: Any, fc: pd.DataFrame | None, cleaned: pd.DataFrame | None,
-                    as_of: dt.date) -> None:
+def _panel_forecast(ax: Any, s: SeriesData) -> None:
+    """(c) each model's forecast median and bands beside the recent reported counts."""
     title = "(c) forecasts by model"
-    has_rep = cleaned is not None and bool(cleaned["value_reported"].notna().any())
-    if (fc is None or fc.empty) and not has_rep:
+    if not s.forecasts and not _has_reported(s):
         _no_data(ax, title)
         return
-    _style(ax, title)
-    if has_rep and cleaned is not None:
-        recent = cleaned[cleaned["ref_date"] > pd.Timestamp(as_of) -
-                         pd.Timedelta(days=FORECAST_CONTEXT_DAYS)]
-        ax.plot(recent["ref_date"].to_numpy(), recent["value_reported"].to_numpy(float), "o",
-                ms=2.2, color=INK, label="reported")
-    if fc is None or fc.empty:
+    _title(ax, title)
+    xs: list[Any] = [np.datetime64(s.as_of)]
+    ys: list[Any] = []
+    if s.reported is not None and _has_reported(s):
+        cut = pd.Timestamp(s.as_of) - pd.Timedelta(days=FORECAST_CONTEXT_DAYS)
+        recent = s.reported[s.reported["ref_date"] > cut]
+        x, y = recent["ref_date"].to_numpy(), recent["value_reported"].to_numpy(float)
+        ax.plot(x, y, "o", ms=2.2, color=INK)
+        xs.append(x)
+        ys.append(y)
+    if not s.forecasts:
         ax.text(0.98, 0.92, "no forecasts", transform=ax.transAxes, ha="right", fontsize=8,
                 color=SLATE, style="italic")
-    else:
-        models = sorted(fc["model"].unique(), key=lambda m: (m == "ensemble", str(m)))
-        extra = iter(EXTRA_COLOURS * 4)
-        for m in models:
-            colour = MODEL_COLOURS.get(str(m)) or next(extra, SLATE)
-            b = _bands(fc[fc["model"] == m], "target_date")
-            if b is not None:
-                _fan(ax, b, colour, _mpl(m))
-    ax.axvline(np.datetime64(as_of), color=INK, lw=0.7, ls=":")
-    ax.set_ylim(bottom=0)
-    ax.legend(fontsize=7, loc="upper left", ncol=2, **_LEGEND)
+    for m in sorted(s.forecasts, key=lambda m: (m == "ensemble", str(m))):
+        ys += _fan(ax, s.forecasts[m], s.colours.get(m, SLATE))
+        xs.append(s.forecasts[m]["x"])
+    draw_scenarios(ax, s.scenarios)
+    ax.axvline(np.datetime64(s.as_of), color=INK, lw=0.7, ls=":")
+    _limits(ax, xs, ys)
 
 
-def _draw_series(fig: Figure, canvas: FigureCanvasAgg, path: Path, signal: str, as_of: dt.date,
-                 data: dict[str, pd.DataFrame | None]) -> None:
-    fig.clear()
-    axes = fig.subplots(1, 3)
-    _panel_counts(axes[0], data["cleaned"], data["nowcast"], as_of, signal)
-    _panel_rt(axes[1], data["rt"])
-    _panel_forecast(axes[2], data["forecasts"], data["cleaned"], as_of)
-    draw_scenarios(axes[2], data.get("scenarios"))
-    fig.subplots_adjust(left=0.045, right=0.99, bottom=0.13, top=0.88, wspace=0.18)
-    canvas.print_png(str(path))
+Panel = Callable[[Any, SeriesData], None]
+#: The panels of every region × signal figure, left to right (append to add one).
+PANELS: list[Panel] = [_panel_counts, _panel_rt, _panel_forecast]
+
+
+class FigureWriter:
+    """Writes one PNG per region × signal with a single figure whose axes are made once."""
+
+    def __init__(self, panels: Sequence[Panel] | None = None) -> None:
+        self.panels = list(PANELS if panels is None else panels)
+        width = FIG_SIZE[0] * len(self.panels) / 3
+        self.fig = Figure(figsize=(width, FIG_SIZE[1]), dpi=FIG_DPI, facecolor=CARD)
+        self.canvas = FigureCanvasAgg(self.fig)
+        self.axes = list(self.fig.subplots(1, len(self.panels), squeeze=False)[0])
+        self.fig.subplots_adjust(left=0.045 * 3 / len(self.panels), right=0.99, bottom=0.13,
+                                 top=0.88, wspace=0.18)
+        for ax in self.axes:
+            _style(ax)
+
+    def write(self, path: Path, series: SeriesData) -> None:
+        """Draw ``series`` in every panel and save the PNG."""
+        for ax, panel in zip(self.axes, self.panels, strict=True):
+            _empty(ax)
+            panel(ax, series)
+        self.canvas.print_png(str(path))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -491,6 +623,9 @@ td.msg{max-width:520px;word-break:break-word;color:#4a4a4a}
 .best{font-weight:700}
 .quiet{color:%(slate)s;font-style:italic}
 .note{font-size:13px;color:#4d5860}
+.key{font:12px sans-serif;color:#3b4852;margin:4px 0 10px}
+.key span{margin-right:14px;white-space:nowrap}
+.key i{display:inline-block;width:18px;height:8px;margin-right:5px;vertical-align:middle}
 figure{margin:6px 0 14px}
 figure img{width:100%%;max-width:1100px;height:auto;border:1px solid #ece9e1;background:#fff}
 figcaption{font:12px sans-serif;color:#4d5860}
@@ -635,8 +770,230 @@ _CAUTION = (
 
 
 # ---------------------------------------------------------------------------------------------
+# the report: a context shared by sections, a list of sections, one page
 
-def write_report(con: duckdb.DuckDBPyConnection, *, as_of: dt.date | None = None,
+@dataclass
+class ReportContext:
+    """One published run being reported: the connection, the run, its folder, and data the
+    sections share (each read once, on first use, through :meth:`memo`)."""
+
+    con: duckdb.DuckDBPyConnection
+    run: dict[str, Any]
+    folder: Path
+    max_regions: int | None = 50
+    _memo: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def run_id(self) -> str:
+        return str(self.run["run_id"])
+
+    @property
+    def as_of(self) -> dt.date:
+        return self.run["as_of"]
+
+    def memo(self, key: str, make: Callable[[], Any]) -> Any:
+        """``make()`` once per report, then its cached value."""
+        if key not in self._memo:
+            self._memo[key] = make()
+        return self._memo[key]
+
+    @property
+    def growth(self) -> pd.DataFrame:
+        return self.memo("growth", lambda: _growth(self.con, self.run_id))
+
+    @property
+    def series(self) -> pd.DataFrame:
+        return self.memo("series", lambda: _series(self.con, self.run_id))
+
+    @property
+    def regions(self) -> list[str]:
+        """Every region of the run, in report order (growth ranking first)."""
+        return self.memo("regions", lambda: _rank_regions(self.growth, self.series))
+
+    @property
+    def figure_regions(self) -> list[str]:
+        """The regions that get figures: the first ``max_regions`` in report order."""
+        n = len(self.regions) if self.max_regions is None else max(0, int(self.max_regions))
+        return self.regions[:n]
+
+
+@dataclass(frozen=True)
+class Section:
+    """One block of the page: ``build(ctx)`` returns its HTML below the heading; ``warn(ctx)``
+    True draws it with the alert colour."""
+
+    id: str
+    nav: str
+    title: str
+    build: Callable[[ReportContext], str]
+    warn: Callable[[ReportContext], bool] | None = None
+
+
+def _growth_section(ctx: ReportContext) -> str:
+    return ('<p class="note">Latest estimate per region and signal, ranked by the probability '
+            "that R<sub>t</sub> exceeds 1, then by how fast counts are changing.</p>"
+            + _growth_html(ctx.growth, set(ctx.figure_regions)))
+
+
+def _quality_data(ctx: ReportContext) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame,
+                                               pd.DataFrame]:
+    def make() -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+        actions, act_regions = _clean_actions(ctx.con, ctx.run_id)
+        return (actions, act_regions, _feed_alerts(ctx.con, ctx.as_of),
+                _delay_drift(ctx.con, ctx.run_id))
+
+    return ctx.memo("quality", make)
+
+
+def _quality_section(ctx: ReportContext) -> str:
+    return _quality_html(*_quality_data(ctx), ctx.as_of)
+
+
+def _quality_warn(ctx: ReportContext) -> bool:
+    actions, _, feeds, drift = _quality_data(ctx)
+    return bool((not actions.empty and actions["n"].sum() > 0) or not feeds.empty
+                or not drift.empty)
+
+
+def _write_figures(ctx: ReportContext) -> list[str]:
+    """One PNG per region × signal of the figure regions; returns the HTML per region."""
+    figdir = ctx.folder / "figures"
+    figdir.mkdir(parents=True, exist_ok=True)
+    for old in figdir.glob("*.png"):  # this folder belongs to this run's report only
+        old.unlink()
+    signals_of: dict[str, list[str]] = {}
+    for r, s in ctx.series[["region", "signal"]].itertuples(index=False):
+        signals_of.setdefault(str(r), []).append(str(s))
+    data = _figure_data(ctx.con, ctx.run_id, ctx.as_of, ctx.figure_regions)
+    blocks: list[str] = []
+    with matplotlib.rc_context({"font.size": 8}):
+        writer = FigureWriter()
+        for region in ctx.figure_regions:
+            items = []
+            for signal in signals_of.get(region, []):
+                name = series_key(region, signal) + ".png"
+                series = data.get((region, signal)) or SeriesData(region, signal, ctx.as_of)
+                writer.write(figdir / name, series)
+                alt = f"{region} – {signal}: reported vs nowcast, R_t, forecasts"
+                items.append(f'<figure><img src="figures/{_e(name)}" alt="{_e(alt)}" '
+                             f'loading="lazy"><figcaption>{_e(signal)}</figcaption></figure>')
+            blocks.append(f'<h3 id="{_region_anchor(region)}">{_e(region)}</h3>'
+                          + "".join(items))
+    return blocks
+
+
+def _key_html(ctx: ReportContext) -> str:
+    """The colour key of every figure, once on the page (legends in each PNG cost a fifth of
+    the drawing time)."""
+    models = [r[0] for r in _rows(ctx.con, "SELECT DISTINCT model FROM out.forecasts "
+                                           "WHERE run_id = ? ORDER BY 1", [ctx.run_id])]
+    models.sort(key=lambda m: (m == "ensemble", m))
+    colours = model_colours(models)
+
+    def swatch(colour: str, text: str) -> str:
+        return f'<span><i style="background:{colour}"></i>{_e(text)}</span>'
+
+    return ('<p class="key">' + swatch(REPORTED_COLOUR, "reported (a)")
+            + swatch(INK, "reported (c, dots)") + swatch(TEAL, "nowcast") + swatch(PLUM, "R_t")
+            + swatch(AMBER + "33", "R_t relies on the nowcast") + " forecasts: "
+            + "".join(swatch(colours[m], m) for m in models) + "</p>")
+
+
+def _regions_section(ctx: ReportContext) -> str:
+    parts = [(f'<p class="note">Per signal: (a) reported daily counts (bars) with the nowcast '
+             f"median and bands for the last {WINDOW_DAYS} days; (b) R<sub>t</sub> with the "
+             "R = 1 line, amber shading marks days that depend on the nowcast; (c) each model's "
+             "forecast median and bands beside the recent counts. The dotted line is the as-of "
+             "date.</p>")]
+    if ctx.figure_regions:
+        parts.append(_key_html(ctx))
+        parts += _write_figures(ctx)
+    more = len(ctx.regions) - len(ctx.figure_regions)
+    if more > 0:
+        parts.append(f'<p class="note">{more} more region(s) are listed in the growth table '
+                     f"without figures (figures are limited to the top "
+                     f"{len(ctx.figure_regions)} regions by growth; see "
+                     "<code>max_regions</code>).</p>")
+    if not ctx.regions:
+        parts.append('<p class="quiet">no data for any region in this run</p>')
+    return "".join(parts)
+
+
+def _accuracy_section(ctx: ReportContext) -> str:
+    return _accuracy_html(_accuracy(ctx.con))
+
+
+def _delays(ctx: ReportContext) -> tuple[str, bool]:
+    return ctx.memo("delays", lambda: delay_alerts_html(ctx.con, ctx.run_id))
+
+
+#: The page's sections, top to bottom.  Another stage adds its panel with :func:`add_section`.
+SECTIONS: list[Section] = [
+    Section("growth", "Growth", "Where transmission is growing", _growth_section),
+    Section("quality", "Data quality", "Data-quality alerts", _quality_section, _quality_warn),
+    Section("regions", "Regions", "Regions", _regions_section),
+    Section("delays", "Delays", "Reporting delays", lambda c: _delays(c)[0],
+            lambda c: _delays(c)[1]),
+    Section("accuracy", "Forecast accuracy", "Forecast accuracy", _accuracy_section),
+    Section("weights", "Ensemble weights", "Weighted ensemble",
+            lambda c: weights_html(c.con, c.run_id)),
+    Section("scenarios", "Scenarios", "Scenarios (what-if projections, not forecasts)",
+            lambda c: scenarios_html(c.con, c.run_id)),
+]
+
+
+def add_section(section: Section, *, before: str | None = None) -> None:
+    """Register a section (placed before the section with id ``before``, else last)."""
+    ids = [s.id for s in SECTIONS]
+    if section.id in ids:
+        SECTIONS[ids.index(section.id)] = section
+        return
+    SECTIONS.insert(ids.index(before) if before in ids else len(SECTIONS), section)
+
+
+def _section_html(section: Section, ctx: ReportContext) -> str:
+    body = section.build(ctx)
+    warn = " warn" if section.warn is not None and section.warn(ctx) else ""
+    return (f'<section class="block{warn}" id="{_e(section.id)}"><h2>{_e(section.title)}</h2>\n'
+            f"{body}</section>\n")
+
+
+def _page(ctx: ReportContext, sections: Sequence[Section], body: str) -> str:
+    run = ctx.run
+    nav = "".join(f'<a href="#{_e(s.id)}">{_e(s.nav)}</a>' for s in sections)
+    return f"""<!DOCTYPE html>
+<html lang="en"><head><meta charset="utf-8">
+<meta name="viewport" content="width=device-width, initial-scale=1">
+<title>Tallywave report {_e(ctx.as_of)}</title>
+<style>{_css()}</style></head>
+<body>
+<header class="top">
+<h1>Tallywave · daily surveillance report</h1>
+<div class="meta"><span>as of <b>{_e(ctx.as_of)}</b></span><span>run <b>{_e(ctx.run_id)}</b></span>
+<span>published <b>{_e(_time_text(run["finished_at"]))}</b></span>
+<span>code <b>{_e(run["code_version"] or "unknown")}</b></span></div>
+<p class="how">How to read this: start with the growth table (the regions most likely to be
+growing are at the top), check the data-quality alerts before trusting any single number, then
+look at each region's panels — reported counts against the nowcast, R<sub>t</sub> against the
+R = 1 line, and the forecast fans. Shaded bands are 50% (darker) and 90% (lighter)
+intervals.</p>
+</header>
+<nav>{nav}<a href="#cautions">Cautions</a></nav>
+<main>
+{body}</main>
+<footer id="cautions"><h2>Cautions</h2>{_CAUTION}
+<p class="note">Generated from run {_e(ctx.run_id)} of Tallywave {_e(run["code_version"] or "")}.
+</p></footer>
+</body></html>
+"""
+
+
+def report_folder(out_dir: str | Path, run_id: str) -> Path:
+    """``out_dir/<run_id>``: the run id starts with the as-of date, so the date appears once."""
+    return Path(out_dir) / re.sub(r"[^A-Za-z0-9._-]+", "_", run_id)
+
+
+def write_report(con: duckdb.DuckDBPyConnection, *, as_of: dt.date | str | None = None,
                  out_dir: str | Path = "reports", max_regions: int | None = 50) -> Path:
     """Write the HTML report of a published run and return the path of its ``index.html``.
 
@@ -649,102 +1006,12 @@ def write_report(con: duckdb.DuckDBPyConnection, *, as_of: dt.date | None = None
     elif isinstance(as_of, dt.datetime):
         as_of = as_of.date()
     run = _pick_run(con, as_of)
-    run_id, run_as_of = run["run_id"], run["as_of"]
-
-    growth = _growth(con, run_id)
-    series = _series(con, run_id)
-    order = _rank_regions(growth, series)
-    fig_regions = order if max_regions is None else order[:max(0, int(max_regions))]
-    actions, act_regions = _clean_actions(con, run_id)
-    feeds = _feed_alerts(con, run_as_of)
-    drift = _delay_drift(con, run_id)
-    delay_html, delay_warn = delay_alerts_html(con, run_id)
-    acc = _accuracy(con)
-
-    folder = Path(out_dir) / f"{run_as_of.isoformat()}_{re.sub(r'[^A-Za-z0-9._-]+', '_', run_id)}"
-    figdir = folder / "figures"
-    figdir.mkdir(parents=True, exist_ok=True)
-    for old in figdir.glob("*.png"):  # this folder belongs to this run's report only
-        old.unlink()
-
-    signals_of: dict[str, list[str]] = {}
-    for r, s in series[["region", "signal"]].itertuples(index=False):
-        signals_of.setdefault(str(r), []).append(str(s))
-    fig_html: list[str] = []
-    if fig_regions:
-        data = _figure_data(con, run_id, run_as_of, fig_regions)
-        fig = Figure(figsize=FIG_SIZE, dpi=FIG_DPI, facecolor=CARD)
-        canvas = FigureCanvasAgg(fig)
-        with matplotlib.rc_context({"font.size": 8}):
-            for region in fig_regions:
-                items = []
-                for signal in signals_of.get(region, []):
-                    key = (region, signal)
-                    name = series_key(region, signal) + ".png"
-                    _draw_series(fig, canvas, figdir / name, signal, run_as_of,
-                                 {k: data[k].get(key) for k in data})
-                    alt = f"{region} – {signal}: reported vs nowcast, R_t, forecasts"
-                    items.append(
-                        f'<figure><img src="figures/{_e(name)}" alt="{_e(alt)}" loading="lazy">'
-                        f"<figcaption>{_e(signal)}</figcaption></figure>")
-                fig_html.append(f'<h3 id="{_region_anchor(region)}">{_e(region)}</h3>'
-                                + "".join(items))
-        fig.clear()
-        del canvas, fig
-    more = len(order) - len(fig_regions)
-    if more > 0:
-        fig_html.append(f'<p class="note">{more} more region(s) are listed in the growth table '
-                        f"without figures (figures are limited to the top {len(fig_regions)} "
-                        "regions by growth; see <code>max_regions</code>).</p>")
-    if not order:
-        fig_html.append('<p class="quiet">no data for any region in this run</p>')
-
-    n_actions = int(actions["n"].sum()) if not actions.empty else 0
-    warn = " warn" if (n_actions or not feeds.empty or not drift.empty or delay_warn) else ""
-    page = f"""<!DOCTYPE html>
-<html lang="en"><head><meta charset="utf-8">
-<meta name="viewport" content="width=device-width, initial-scale=1">
-<title>Tallywave report {_e(run_as_of)}</title>
-<style>{_css()}</style></head>
-<body>
-<header class="top">
-<h1>Tallywave · daily surveillance report</h1>
-<div class="meta"><span>as of <b>{_e(run_as_of)}</b></span><span>run <b>{_e(run_id)}</b></span>
-<span>published <b>{_e(_time_text(run["finished_at"]))}</b></span>
-<span>code <b>{_e(run["code_version"] or "unknown")}</b></span></div>
-<p class="how">How to read this: start with the growth table (the regions most likely to be
-growing are at the top), check the data-quality alerts before trusting any single number, then
-look at each region's panels — reported counts against the nowcast, R<sub>t</sub> against the
-R = 1 line, and the forecast fans. Shaded bands are 50% (darker) and 90% (lighter)
-intervals.</p>
-</header>
-<nav><a href="#growth">Growth</a><a href="#quality">Data quality</a>
-<a href="#regions">Regions</a><a href="#accuracy">Forecast accuracy</a>
-<a href="#cautions">Cautions</a></nav>
-<main>
-<section class="block" id="growth"><h2>Where transmission is growing</h2>
-<p class="note">Latest estimate per region and signal, ranked by the probability that R<sub>t</sub>
-exceeds 1, then by how fast counts are changing.</p>
-{_growth_html(growth, set(fig_regions))}</section>
-<section class="block{warn}" id="quality"><h2>Data-quality alerts</h2>
-{_quality_html(actions, act_regions, feeds, drift, run_as_of)}{delay_html}</section>
-<section class="block" id="regions"><h2>Regions</h2>
-<p class="note">Per signal: (a) reported daily counts (bars) with the nowcast median and bands for
-the last {WINDOW_DAYS} days; (b) R<sub>t</sub> with the R = 1 line, amber shading marks days that
-depend on the nowcast; (c) each model's forecast median and bands beside the recent counts. The
-dotted line is the as-of date.</p>
-{"".join(fig_html)}</section>
-<section class="block" id="accuracy"><h2>Forecast accuracy</h2>
-{_accuracy_html(acc)}</section>
-{forecast_sections(con, run_id)}
-</main>
-<footer id="cautions"><h2>Cautions</h2>{_CAUTION}
-<p class="note">Generated from run {_e(run_id)} of Tallywave {_e(run["code_version"] or "")}.
-</p></footer>
-</body></html>
-"""
-    index = folder / "index.html"
-    tmp = folder / "index.html.tmp"
+    ctx = ReportContext(con, run, report_folder(out_dir, run["run_id"]), max_regions)
+    ctx.folder.mkdir(parents=True, exist_ok=True)
+    sections = list(SECTIONS)
+    page = _page(ctx, sections, "".join(_section_html(s, ctx) for s in sections))
+    index = ctx.folder / "index.html"
+    tmp = ctx.folder / "index.html.tmp"
     tmp.write_text(page, encoding="utf-8")
     tmp.replace(index)
     return index

@@ -163,6 +163,13 @@ SPEC: dict[str, Setting] = {
                            "`settle_days`", ("delay", "fixed")),
     "settle_max_days": Setting(90, "`settle_rule = \"delay\"` never waits longer than this (a "
                                "long, uncertain delay tail would otherwise keep truth unsettled)"),
+    # ---- retention ----
+    "retention_days": Setting(42, "`tallywave prune` keeps every output of the runs of this many "
+                              "days before the newest published run (default: horizon + "
+                              "settle days, so a forecast's context stays until it is scored); "
+                              "older and superseded runs keep their forecasts and fits only"),
+    "prune_after_run": Setting(False, "apply the retention policy after every published run "
+                               "(without shrinking the file: freed space is reused)"),
     # ---- run ----
     "seed": Setting(20260302, "random seed: runs are reproducible"),
     "batch_regions": Setting(250, "regions per parallel task (never changes the results)"),

@@ -172,8 +172,15 @@ _V5 = [
         PRIMARY KEY (run_id, scenario, region, signal, target_date, q_level))""",
 ]
 
+# Retention (pipeline/retention.py): one row per run whose intermediate outputs were deleted.
+_V6 = [
+    """CREATE TABLE IF NOT EXISTS out.pruned_runs (
+        run_id VARCHAR NOT NULL, pruned_at TIMESTAMP NOT NULL, reason VARCHAR NOT NULL,
+        rows_deleted BIGINT)""",
+]
+
 #: Forward migrations: (version, statements).  Append new steps; never edit a shipped one.
-MIGRATIONS: list[tuple[int, list[str]]] = [(1, _V1), (2, _V2), (3, _V3), (4, _V4), (5, _V5)]
+MIGRATIONS: list[tuple[int, list[str]]] = [(1, _V1), (2, _V2), (3, _V3), (4, _V4), (5, _V5), (6, _V6)]
 SCHEMA_VERSION = MIGRATIONS[-1][0]
 
 
@@ -206,10 +213,31 @@ def lock_wait_seconds(wait_s: float | None = None) -> float:
     return value
 
 
+def compaction_marker(path: Path) -> Path:
+    """The file that exists while ``tallywave prune --compact`` swaps the database file."""
+    return path.with_name(path.name + ".compacting")
+
+
+#: A compaction marker older than this is left over from a killed process and ignored.
+STALE_MARKER_S = 3600.0
+
+
+def _being_compacted(path: Path) -> bool:
+    marker = compaction_marker(path)
+    try:
+        return time.time() - marker.stat().st_mtime < STALE_MARKER_S
+    except OSError:  # no marker (the usual case)
+        return False
+
+
 def _connect(path: Path, read_only: bool, wait_s: float) -> duckdb.DuckDBPyConnection:
     deadline = time.monotonic() + wait_s
     while True:
         try:
+            if _being_compacted(path):  # wait as for a lock: the file is about to be replaced
+                by = compaction_marker(path).read_text().strip()
+                raise duckdb.IOException(f'Could not set lock on file "{path}": being '
+                                         f"compacted (PID {by})")
             return duckdb.connect(str(path), read_only=read_only)
         except duckdb.IOException as exc:
             text = str(exc)

@@ -245,3 +245,32 @@ def test_two_runs_started_at_once_both_publish_in_turn(db, base) -> None:
     counts = _counts(db)
     assert counts["raw.reports"] == base["counts"]["raw.reports"]
     assert counts["core.observations"] == base["counts"]["core.observations"]
+
+
+def test_two_cli_runs_at_once_one_line_for_the_loser(prefect_server, db, base) -> None:
+    """Two `tallywave run`s started together both pass the quick lock check; the command takes
+    the lock before its flow starts, so the one that waits too long fails in one line (exit 3)
+    and no flow traceback reaches the console; otherwise both publish in turn."""
+    import prefect.settings
+
+    env = _env(PREFECT_API_URL=str(prefect.settings.PREFECT_API_URL.value()))
+    args = [TALLYWAVE, "--db", str(db), "--wait", "1", "run", "--as-of", base["as_of"],
+            "--no-report", "--settings", str(base["settings"])]
+    procs = [subprocess.Popen(args, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                              env=env) for _ in range(2)]
+    outs = [p.communicate(timeout=600) for p in procs]
+    codes = sorted(p.returncode for p in procs)
+    assert codes in ([0, 0], [0, 3]), outs
+    for p, (out, err) in zip(procs, outs, strict=True):
+        assert "Traceback" not in out + err
+        if p.returncode == 3:
+            lines = err.strip().splitlines()
+            assert len(lines) == 1 and "database in use by another process" in lines[0], err
+            assert out.strip() == ""  # it stopped before any stage ran
+    con = store.connect(db, wait_s=30)
+    try:
+        published = con.execute("SELECT count(*) FROM out.runs WHERE status IN "
+                                "('published', 'superseded')").fetchall()[0][0]
+    finally:
+        con.close()
+    assert published == codes.count(0)

@@ -2,9 +2,11 @@
 all of a run or nothing of it, and loses no row of raw data or of earlier runs.
 
 Each kill starts a run in a fresh process, waits for a phase marker it prints (imports, database
-open, each stage, publishing, scoring, close) and kills the whole process group after a seeded
-random delay spread over that phase's measured duration.  After every kill the database is
-checked from this process; after all kills the next run must publish.
+open, each stage, publishing, scoring, close) and kills the whole process group at a fixed
+fraction of that phase's measured duration: one kill per kill point (:data:`KILL_POINTS`, every
+phase once, the publish phase — the COMMIT — twice), so every phase is covered with the fewest
+processes.  After every kill the database is checked from this process; after all kills the next
+run must publish.
 """
 
 from __future__ import annotations
@@ -25,15 +27,11 @@ import numpy as np
 import pytest
 
 from tallywave.pipeline import store
-from tallywave.pipeline.ingest import ingest_spec
 from tallywave.pipeline.run import execute_run
 from tallywave.pipeline.settings import load_settings
-from tallywave.pipeline.simulate import write_scenario
 
 pytestmark = pytest.mark.slow
 
-N_KILLS = 20  # stage-level kills (pipeline.run.execute_run in a child process)
-N_CLI_KILLS = 3  # kills of `tallywave run` (through the Prefect flow)
 SEED = 20260415
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -74,6 +72,12 @@ PHASES = [
     ("publish", r"\] forecast: "),  # last stage done: out.runs row, COMMIT, then scoring
     ("close", r"^closing "),  # scored; connection close (checkpoint)
 ]
+#: Where the stage-level kills land: (phase, fraction of the phase's measured duration).  Every
+#: phase once at its middle; the publish phase (out.runs row, COMMIT, scoring) also just after
+#: it starts, when the COMMIT is in flight.
+KILL_POINTS = [(name, 0.5) for name, _ in PHASES] + [("publish", 0.05)]
+#: The kills of `tallywave run` (through the Prefect flow): after these stage lines it prints.
+CLI_KILL_POINTS = [r"^clean: ", r"^transmission: ", r"^forecast: "]
 
 
 def _messages(text: str) -> list[str]:
@@ -156,21 +160,17 @@ def _check(snap: dict, base: dict, seen: dict[tuple[str, str], int]) -> int:
 
 
 @pytest.fixture(scope="module")
-def scenario(tmp_path_factory) -> dict:
-    """A small invented scenario ingested into a DuckDB file with two good published runs."""
+def scenario(template, tmp_path_factory) -> dict:
+    """The session's small scenario (conftest ``template``) with two good published runs."""
     root = tmp_path_factory.mktemp("crash")
-    info = write_scenario(root / "feeds", n_regions=4, n_days=100, n_snapshots=30, window=35,
-                          seed=SEED % 1000)
-    settings = root / "settings.toml"
-    settings.write_text("[defaults]\nforecast_draws = 100\nnowcast_draws = 100\n")
+    settings = template["settings"]
     db = root / "base.duckdb"
+    shutil.copy(template["db"], db)
     con = store.connect(db)
-    ingest_spec(con, root / "feeds" / "feeds.toml")
-    first = dt.date.fromisoformat(info["as_of_first"])
     # Good runs: an early one, whose forecasts later runs score (out.scores not empty), and
     # one on the last date, which every run of the tests then supersedes.
-    last = dt.date.fromisoformat(info["as_of_last"])
-    for day in (first + dt.timedelta(days=1), last):
+    last = template["last"]
+    for day in (template["first"] + dt.timedelta(days=1), last):
         execute_run(con, day, load_settings(settings))
     assert con.execute("SELECT count(*) FROM out.scores").fetchall()[0][0] > 0
     con.close()
@@ -225,13 +225,16 @@ def test_killed_runs_leave_nothing_partial(scenario, tmp_path) -> None:
     seen: dict[tuple[str, str], int] = {}
     lost = _check(base, base, seen)
 
-    rng = np.random.default_rng(SEED)
+    patterns = dict(PHASES)
     outcome: Counter[str] = Counter()
     phases: Counter[str] = Counter()
     kills = attempts = 0
-    while kills < N_KILLS and attempts < N_KILLS + 10:
-        anchor = PHASES[attempts % len(PHASES)]
-        delay = float(rng.uniform(0.0, 1.0)) * span[anchor[0]]
+    todo = list(KILL_POINTS)
+    while todo and attempts < len(KILL_POINTS) + 6:
+        name, fraction = todo[0]
+        anchor = (name, patterns[name])
+        retries = attempts - kills  # a run that finished first: kill earlier in the phase
+        delay = fraction * span[name] * 0.5 ** retries
         attempts += 1
         log = tmp_path / f"kill{attempts}.log"
         proc = _spawn(args, log, env)
@@ -252,6 +255,7 @@ def test_killed_runs_leave_nothing_partial(scenario, tmp_path) -> None:
         if not killed:
             outcome["finished before the kill"] += 1
         else:
+            todo.pop(0)
             kills += 1
             phase = _phase_of(text)
             phases[phase] += 1
@@ -271,7 +275,8 @@ def test_killed_runs_leave_nothing_partial(scenario, tmp_path) -> None:
     print(f"\ncrash safety: reference run {wall:.1f} s; {attempts} attempts, {kills} SIGKILLs "
           f"({dict(outcome)}); phases hit {dict(phases)}; crashes survived {kills}; "
           f"rows lost {lost}")
-    assert kills >= N_KILLS
+    assert kills == len(KILL_POINTS), f"kill points not reached: {todo}"
+    assert set(phases) >= {p for p, _ in PHASES} - {"start"}  # "start" may read as "spawn"
     assert lost == 0
 
 
@@ -283,7 +288,6 @@ def test_killed_cli_runs_recover(scenario, tmp_path, prefect_server) -> None:
     shutil.copy(scenario["db"], db)
     env = _env()
     env["PREFECT_API_URL"] = str(prefect.settings.PREFECT_API_URL.value())
-    env["PREFECT_LOGGING_LEVEL"] = "INFO"  # the stage markers are flow log lines
     as_of = scenario["as_of"].isoformat()
     exe = shutil.which("tallywave", path=str(Path(sys.executable).parent)) or "tallywave"
     args = [exe, "--db", str(db), "run", "--as-of", as_of, "--no-report",
@@ -292,15 +296,14 @@ def test_killed_cli_runs_recover(scenario, tmp_path, prefect_server) -> None:
     seen: dict[tuple[str, str], int] = {}
     lost = _check(base, base, seen)
     rng = np.random.default_rng(SEED + 1)
-    anchors = [r"\] clean \.\.\.", r"\] transmission \.\.\.", r"\] forecast: "]
     phases: Counter[str] = Counter()
     kills = 0
-    for k in range(N_CLI_KILLS):
+    for k, anchor in enumerate(CLI_KILL_POINTS):
         log = tmp_path / f"cli{k}.log"
         proc = _spawn(args, log, env)
         try:
-            if _wait_for(log, anchors[k % len(anchors)], proc, timeout=180):
-                time.sleep(float(rng.uniform(0.0, 1.0)))
+            if _wait_for(log, anchor, proc, timeout=180):
+                time.sleep(float(rng.uniform(0.0, 0.5)))
             kills += _kill(proc)
         finally:
             if proc.poll() is None:  # pragma: no cover
@@ -317,5 +320,5 @@ def test_killed_cli_runs_recover(scenario, tmp_path, prefect_server) -> None:
     lost += _check(snap, base, seen)
     assert list(snap["runs"].values()).count("published") == 2  # the early run and this one
     print(f"\ncrash safety (CLI): {kills} SIGKILLs ({dict(phases)}); rows lost {lost}")
-    assert kills == N_CLI_KILLS
+    assert kills == len(CLI_KILL_POINTS)
     assert lost == 0

@@ -10,24 +10,13 @@ from pathlib import Path
 import duckdb
 import pytest
 
-from tallywave.pipeline import store
-from tallywave.pipeline.ingest import ingest_spec
-from tallywave.pipeline.simulate import write_scenario
-
 PNG = b"\x89PNG\r\n\x1a\n"
 
 
 @pytest.fixture(scope="module")
-def small_db(tmp_path_factory) -> tuple[Path, dt.date]:
-    """A small invented scenario, ingested once; tests copy the database file."""
-    root = tmp_path_factory.mktemp("flows")
-    info = write_scenario(root / "feeds", n_regions=4, n_days=120, n_snapshots=40, window=35,
-                          seed=7)
-    db = root / "base.duckdb"
-    con = store.connect(db)
-    ingest_spec(con, root / "feeds" / "feeds.toml")
-    con.close()
-    return db, dt.date.fromisoformat(info["as_of_last"])
+def small_db(template) -> tuple[Path, dt.date]:
+    """The session's small ingested scenario (conftest ``template``); tests copy the file."""
+    return template["db"], template["last"]
 
 
 def _copy(db: Path, dest: Path) -> str:

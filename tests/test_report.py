@@ -169,8 +169,8 @@ def built(tmp_path_factory):
 def test_newest_published_run_and_layout(built):
     _, index, _ = built
     assert index.name == "index.html" and index.exists()
-    # failed (newer) and superseded runs are ignored; folder is <as_of>_<run_id>
-    assert index.parent.name == f"{AS_OF.isoformat()}_{RUN}"
+    # failed (newer) and superseded runs are ignored; folder is <run_id>
+    assert index.parent.name == RUN  # the run id starts with the as-of date: named once
 
 
 def test_every_series_has_one_linked_png(built):
@@ -270,7 +270,7 @@ def test_unknown_as_of_raises(built, tmp_path):
 def test_run_without_outputs_reports_no_data(built, tmp_path):
     con, _, _ = built
     index = write_report(con, as_of=AS_OF - dt.timedelta(days=1), out_dir=tmp_path)
-    assert index.parent.name == f"2026-05-09_{OLD_RUN}"
+    assert index.parent.name == OLD_RUN
     text = index.read_text(encoding="utf-8")
     assert "no growth estimates in this run" in text
     assert "no data for any region" in text
