@@ -90,7 +90,10 @@ def scoreboard_weights(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings:
     """Weights per signal × horizon band × member from the scores knowable on ``as_of``."""
     if not any(members.values()):
         return pd.DataFrame(columns=COLUMNS)
-    scores = scores_as_of(con, as_of, settings)
+    # only the forecasts the weights can use: issued within the longest window of any signal
+    window = max(int(settings.get("ensemble_window_days", sig)) for sig in members)
+    scores = scores_as_of(con, as_of, settings,
+                          issued_since=as_of - dt.timedelta(days=window))
     parts = [signal_weights(scores, signal, mem, as_of, settings.for_signal(signal))
              for signal, mem in members.items() if mem]
     return pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=COLUMNS)

@@ -65,10 +65,12 @@ def settle_horizons(con: duckdb.DuckDBPyConnection, run_id: str | None,
 
 
 def _stage_scoring_inputs(con: duckdb.DuckDBPyConnection, as_of: dt.date,
-                          settings: Settings) -> dict[str, int]:
+                          settings: Settings, issued_since: dt.date | None = None
+                          ) -> dict[str, int]:
     """Temp tables ``_settle`` (signal, settle_days), ``_truth`` (settled truth known on
     ``as_of``: cleaned and raw) and ``_published`` (published forecasts issued by then whose
     target has settled); returns the settle horizon per signal."""
+    since = issued_since or dt.date(1, 1, 1)  # default: every published forecast
     run_id = truth_run(con, as_of)
     settle = settle_horizons(con, run_id, settings)
     con.execute("CREATE OR REPLACE TEMP TABLE _settle (signal VARCHAR, settle_days INTEGER)")
@@ -81,6 +83,7 @@ def _stage_scoring_inputs(con: duckdb.DuckDBPyConnection, as_of: dt.date,
                       arg_max(o.value, o.as_of) AS truth_raw
                FROM core.observations o JOIN _settle s USING (signal)
                WHERE o.as_of <= ? AND o.ref_date <= ?::DATE - s.settle_days
+                 AND o.ref_date > ?::DATE
                GROUP BY ALL),
            repair AS (
                SELECT region, signal, ref_date AS target_date,
@@ -92,14 +95,14 @@ def _stage_scoring_inputs(con: duckdb.DuckDBPyConnection, as_of: dt.date,
                   s.settle_days
            FROM raw r JOIN _settle s USING (signal)
            LEFT JOIN repair c USING (region, signal, target_date)""",
-        [as_of, as_of, run_id, run_id])
+        [as_of, as_of, since, run_id, run_id])
     con.execute(
         "CREATE OR REPLACE TEMP TABLE _published AS "
         "SELECT f.* FROM out.forecasts f JOIN out.runs r USING (run_id) "
         "JOIN _settle s ON s.signal = f.signal "
-        "WHERE r.status = 'published' AND f.issued_on <= ? "
+        "WHERE r.status = 'published' AND f.issued_on <= ? AND f.issued_on >= ? "
         "AND f.target_date <= ?::DATE - s.settle_days",
-        [as_of, as_of])
+        [as_of, since, as_of])
     return settle
 
 
@@ -117,12 +120,13 @@ def _scores_select() -> str:
             " WHERE levels_ok")
 
 
-def scores_as_of(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings
-                 ) -> pd.DataFrame:
+def scores_as_of(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings,
+                 issued_since: dt.date | None = None) -> pd.DataFrame:
     """The scores that could have been computed on ``as_of``: published forecasts whose target
     had settled by then, against the truth known then.  Writes nothing; no later data is read,
-    so e.g. ensemble weights for a backfilled date equal what would have been published then."""
-    _stage_scoring_inputs(con, as_of, settings)
+    so e.g. ensemble weights for a backfilled date equal what would have been published then.
+    ``issued_since`` limits the work to forecasts issued on or after that date."""
+    _stage_scoring_inputs(con, as_of, settings, issued_since)
     try:
         return con.execute(_scores_select(), [as_of]).df()
     finally:
