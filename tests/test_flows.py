@@ -1,5 +1,5 @@
-"""Prefect orchestration: the daily flow publishes a run and a report; Dask gives the same numbers
-as the local runner; the scheduled deployment builds without serving."""
+"""Prefect orchestration: the daily flow publishes a run and a report; every runner and batch size
+gives the same numbers; the scheduled deployment builds without serving."""
 
 from __future__ import annotations
 
@@ -58,27 +58,68 @@ def test_daily_flow_publishes_run_and_report(prefect_server, small_db, tmp_path)
         assert f'figures/{png.name}' in html
 
 
-def test_dask_runner_matches_local(prefect_server, small_db, tmp_path) -> None:
+_OUTPUTS = {
+    "forecasts": "SELECT model, region, signal, horizon_days, q_level, value FROM out.forecasts",
+    "rt": "SELECT region, signal, ref_date, q_level, value FROM out.rt",
+    "growth": "SELECT region, signal, ref_date, growth_rate, p_growing FROM out.growth",
+    "nowcast": "SELECT region, signal, ref_date, q_level, value FROM out.nowcast",
+    "delay_pmf": "SELECT region, signal, delay_days, prob FROM out.delay_pmf",
+    "cleaned": "SELECT region, signal, ref_date, value_clean FROM core.cleaned",
+    "weights": "SELECT signal, horizon_from, model, weight FROM out.ensemble_weights",
+}
+
+
+def _outputs(db: str, run_id: str) -> dict[str, list[tuple]]:
+    con = duckdb.connect(db, read_only=True)
+    try:
+        return {k: con.execute(f"{q} WHERE run_id = ? ORDER BY ALL", [run_id]).fetchall()
+                for k, q in _OUTPUTS.items()}
+    finally:
+        con.close()
+
+
+def _same(a: list[tuple], b: list[tuple], what: str) -> None:
+    assert len(a) == len(b), what
+    for x, y in zip(a, b, strict=True):
+        for u, v in zip(x, y, strict=True):
+            if isinstance(u, float) and isinstance(v, float):
+                assert u == pytest.approx(v, rel=1e-9, abs=1e-9, nan_ok=True), (what, x, y)
+            else:
+                assert u == v, (what, x, y)
+
+
+@pytest.mark.slow
+def test_runners_and_batch_sizes_give_identical_outputs(prefect_server, small_db,
+                                                         tmp_path) -> None:
+    """A parallelism knob never changes a published number: serial with one batch, threads with
+    batches of 1, processes with batches of 7 (here: one batch per 4 regions → one) and Dask
+    with batches of 2 publish the same outputs to 1e-9 (one random stream per region)."""
     from tallywave.flows.daily import daily
+    from tallywave.pipeline import store
+    from tallywave.pipeline.run import execute_run
+    from tallywave.pipeline.settings import load_settings
 
     base, last = small_db
-    settings = _settings_file(tmp_path)
-    day = (last - dt.timedelta(days=3)).isoformat()
+    day = last - dt.timedelta(days=3)
     results = {}
-    for runner in ("local", "dask"):
+    for runner, batch in (("serial", 250), ("threads", 1), ("processes", 7), ("dask", 2)):
         db = _copy(base, tmp_path / f"{runner}.duckdb")
-        out = daily(as_of=day, db=db, settings=settings, runner=runner, report=False)
-        con = duckdb.connect(db, read_only=True)
-        results[runner] = con.execute(
-            "SELECT model, region, signal, horizon_days, q_level, value FROM out.forecasts "
-            "WHERE run_id = ? ORDER BY ALL", [out["run_id"]]).fetchall()
-        results[runner + "_rt"] = con.execute(
-            "SELECT region, signal, ref_date, q_level, value FROM out.rt WHERE run_id = ? "
-            "ORDER BY ALL", [out["run_id"]]).fetchall()
-        con.close()
-    assert len(results["local"]) > 1000
-    assert results["local"] == results["dask"]
-    assert results["local_rt"] == results["dask_rt"]
+        p = tmp_path / f"{runner}.toml"
+        p.write_text("[defaults]\nforecast_draws = 150\nnowcast_draws = 150\n"
+                     f"batch_regions = {batch}\n")
+        if runner == "serial":
+            con = store.connect(db)
+            run_id = execute_run(con, day, load_settings(p), score_after=False)["run_id"]
+            con.close()
+        else:
+            run_id = daily(as_of=day.isoformat(), db=db, settings=str(p), runner=runner,
+                           report=False)["run_id"]
+        results[runner] = _outputs(db, run_id)
+    ref = results["serial"]
+    assert len(ref["forecasts"]) > 1000 and len(ref["rt"]) > 100 and len(ref["nowcast"]) > 100
+    for runner in ("threads", "processes", "dask"):
+        for table in _OUTPUTS:
+            _same(ref[table], results[runner][table], f"{runner}: {table}")
 
 
 def test_serve_builds_a_scheduled_deployment(tmp_path) -> None:
