@@ -475,7 +475,16 @@ def _json_key(name: str) -> str:
     return '"' + name.replace('"', '\\"') + '"'
 
 
-_VALIDATE = """
+#: The checks of the region and signal text shared by every validation query.
+_NAME_CHECKS = """    WHEN region IS NULL THEN 'missing region'
+    WHEN length(region) > {max_text}
+         THEN 'region is ' || length(region) || ' characters long (limit {max_text})'
+    WHEN signal IS NULL THEN 'missing signal'
+    WHEN length(signal) > {max_text}
+         THEN 'signal is ' || length(signal) || ' characters long (limit {max_text})'
+"""
+
+_VALIDATE = ("""
 CREATE OR REPLACE TEMP TABLE _checked AS
 WITH parsed AS (
     SELECT line_no, content, type_error,
@@ -496,13 +505,9 @@ SELECT line_no, content, type_error, region, signal, ref_date, as_of, value,
     WHEN type_error IS NOT NULL THEN type_error
     WHEN region = {region_name} AND trim(ref_raw) = {ref_name} AND trim(value_raw) = {value_name}
          THEN 'repeated header line'
-    WHEN region IS NULL THEN 'missing region'
-    WHEN length(region) > {max_text}
-         THEN 'region is ' || length(region) || ' characters long (limit {max_text})'
-    WHEN signal IS NULL THEN 'missing signal'
-    WHEN length(signal) > {max_text}
-         THEN 'signal is ' || length(signal) || ' characters long (limit {max_text})'
-    WHEN ref_raw IS NULL OR trim(ref_raw) = '' THEN 'missing ref_date'
+"""
+    + _NAME_CHECKS
+    + """    WHEN ref_raw IS NULL OR trim(ref_raw) = '' THEN 'missing ref_date'
     WHEN ref_label IS NULL
          THEN 'unparseable ref_date ''' || left(ref_raw, 40) || ''' (expected {fmt_txt})'
     WHEN ref_label < DATE '1900-01-01' THEN 'ref_date ' || ref_label || ' is before 1900'
@@ -517,11 +522,11 @@ SELECT line_no, content, type_error, region, signal, ref_date, as_of, value,
     WHEN value > {max_value} THEN 'implausibly large value ' || left(value_raw, 40)
   END AS reason
 FROM typed
-"""
+""")
 
 #: Line lists: one row per event.  ``as_of`` of a record is its ``reported_on`` date; the file's
 #: own as_of (when the spec gives one) only bounds it.
-_VALIDATE_RECORDS = """
+_VALIDATE_RECORDS = ("""
 CREATE OR REPLACE TEMP TABLE _checked AS
 WITH typed AS (
     SELECT line_no, content, type_error,
@@ -541,13 +546,9 @@ SELECT line_no, content, type_error, region, signal, ref_date, reported_on AS as
     WHEN type_error IS NOT NULL THEN type_error
     WHEN region = {region_name} AND trim(ref_raw) = {ref_name} AND trim(rep_raw) = {rep_name}
          THEN 'repeated header line'
-    WHEN region IS NULL THEN 'missing region'
-    WHEN length(region) > {max_text}
-         THEN 'region is ' || length(region) || ' characters long (limit {max_text})'
-    WHEN signal IS NULL THEN 'missing signal'
-    WHEN length(signal) > {max_text}
-         THEN 'signal is ' || length(signal) || ' characters long (limit {max_text})'
-    {record_check}
+"""
+    + _NAME_CHECKS
+    + """    {record_check}
     WHEN ref_raw IS NULL OR trim(ref_raw) = '' THEN 'missing ref_date'
     WHEN ref_date IS NULL
          THEN 'unparseable ref_date ''' || left(ref_raw, 40) || ''' (expected {fmt_txt})'
@@ -560,7 +561,7 @@ SELECT line_no, content, type_error, region, signal, ref_date, reported_on AS as
     {as_of_check}
   END AS reason
 FROM typed
-"""
+""")
 
 _DUPLICATES = """
 CREATE OR REPLACE TEMP TABLE _checked AS
