@@ -283,10 +283,9 @@ def test_pooling_shrinks_thin_series_toward_pooled_pmf() -> None:
 # --------------------------------------------------------------------------- sampler maths
 
 
-def test_poisson_nowcast_matches_gamma_poisson_closed_form() -> None:
-    # Poisson cells, no parameter uncertainty: a | data ~ Gamma(O + kappa, F + kappa / L),
-    # Y | a ~ Poisson(a M)  =>  Y ~ NegBin(O + kappa, (F + kappa/L) / (F + kappa/L + M))
-    # (gamma-Poisson conjugacy, standard result, from memory); reference: scipy.stats.nbinom
+def _poisson_closed_form() -> tuple[DelayNowcaster, int, float, float]:
+    """A Poisson nowcast without parameter uncertainty and the negative-binomial (size, p) of
+    its last row's unreported arrivals in closed form."""
     rng = np.random.default_rng(21)
     _, obs = simulate_triangle(np.full((1, 50), 15.0), _gamma_pmf(4.0, max_delay=20), 0.0, rng)
     nc = DelayNowcaster(model=DelayGLM(family="poisson"), parameter_uncertainty=False).fit(obs)
@@ -296,6 +295,14 @@ def test_poisson_nowcast_matches_gamma_poisson_closed_form() -> None:
     miss = (m.row_pmf_[0, t] * m.predict_mask_[0, t]).sum()
     rate = frac + nc.prior_shape / nc.prior_level_[0]
     size, p = count + nc.prior_shape, rate / (rate + miss)
+    return nc, t, float(size), float(p)
+
+
+def test_poisson_nowcast_matches_gamma_poisson_closed_form() -> None:
+    # Poisson cells, no parameter uncertainty: a | data ~ Gamma(O + kappa, F + kappa / L),
+    # Y | a ~ Poisson(a M)  =>  Y ~ NegBin(O + kappa, (F + kappa/L) / (F + kappa/L + M))
+    # (gamma-Poisson conjugacy, standard result, from memory); reference: scipy.stats.nbinom
+    nc, t, size, p = _poisson_closed_form()
     assert size * (1 - p) / p < 50  # exact gamma-Poisson branch of the sampler
     y = nc.sample(20000)[:, 0, t] - nc.reported_[0, t]
     grid = np.arange(0, int(np.quantile(y, 0.99)) + 1)
@@ -566,19 +573,11 @@ def test_random_streams_per_series_and_repeatable_quantiles(sim: dict) -> None:
 def test_predictive_logpdf_matches_the_gamma_poisson_closed_form() -> None:
     # As in the sampling test above: Poisson cells, no parameter uncertainty -> the arrivals of
     # the predicted cells are NegBin(O + kappa, rate / (rate + M)) (scipy.stats.nbinom).
-    rng = np.random.default_rng(21)
-    _, obs = simulate_triangle(np.full((1, 50), 15.0), _gamma_pmf(4.0, max_delay=20), 0.0, rng)
-    nc = DelayNowcaster(model=DelayGLM(family="poisson"), parameter_uncertainty=False).fit(obs)
-    m = nc.model_
-    t = 49
-    count, frac = m.observed_counts_[0, t], m.observed_fraction_[0, t]
-    miss = (m.row_pmf_[0, t] * m.predict_mask_[0, t]).sum()
-    rate = frac + nc.prior_shape / nc.prior_level_[0]
-    size, p = count + nc.prior_shape, rate / (rate + miss)
+    nc, t, size, p = _poisson_closed_form()
     y = np.zeros((1, 50))
     for k in (0, 3, 9):
         y[0, t] = k
-        lp, lo, hi = nc.predictive_logpdf(m.predict_exposure_, y)
+        lp, lo, hi = nc.predictive_logpdf(nc.model_.predict_exposure_, y)
         assert np.exp(lp[0, t]) == pytest.approx(stats.nbinom.pmf(k, size, p), rel=1e-9)
         assert hi[0, t] == pytest.approx(stats.nbinom.cdf(k, size, p), rel=1e-9)
         assert lo[0, t] == pytest.approx(stats.nbinom.cdf(k - 1, size, p), abs=1e-12)
