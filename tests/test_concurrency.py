@@ -9,7 +9,6 @@ hold the lock from child processes and check both outcomes and that nothing is c
 
 from __future__ import annotations
 
-import os
 import shutil
 import subprocess
 import sys
@@ -24,6 +23,7 @@ from tallywave.pipeline import store
 from tallywave.pipeline.errors import DatabaseBusy
 from tallywave.pipeline.ingest import ingest_spec
 from tallywave.pipeline.simulate import write_scenario
+from tests.conftest import cli_env
 
 ROOT = Path(__file__).resolve().parents[1]
 TALLYWAVE = shutil.which("tallywave", path=str(Path(sys.executable).parent)) or "tallywave"
@@ -58,15 +58,6 @@ con = store.connect(sys.argv[1], wait_s=120)
 print(execute_run(con, sys.argv[2], load_settings(sys.argv[3]), score_after=False)["run_id"])
 con.close()
 """
-
-
-def _env(**extra: str) -> dict[str, str]:
-    env = dict(os.environ)
-    env["PYTHONPATH"] = str(ROOT) + os.pathsep + env.get("PYTHONPATH", "")
-    env["PREFECT_SERVER_ANALYTICS_ENABLED"] = "false"
-    env.pop("TALLYWAVE_LOCK_WAIT", None)
-    env.update(extra)
-    return env
 
 
 @pytest.fixture(scope="module")
@@ -106,7 +97,7 @@ def hold(db: Path, mode: str, seconds: float = 60.0) -> Iterator[subprocess.Pope
     """Keep the database open in a child process; yields once the child holds the lock."""
     proc = subprocess.Popen([sys.executable, "-c", HOLDER, str(db), mode, str(seconds)],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
-                            env=_env())
+                            env=cli_env())
     try:
         line = proc.stdout.readline()
         assert line.strip() == "holding", proc.stderr.read()
@@ -121,7 +112,7 @@ def hold(db: Path, mode: str, seconds: float = 60.0) -> Iterator[subprocess.Pope
 
 def _cli(*args: str, timeout: float = 120) -> tuple[subprocess.CompletedProcess, float]:
     t0 = time.monotonic()
-    res = subprocess.run([TALLYWAVE, *args], capture_output=True, text=True, env=_env(),
+    res = subprocess.run([TALLYWAVE, *args], capture_output=True, text=True, env=cli_env(),
                          timeout=timeout, check=False)
     return res, time.monotonic() - t0
 
@@ -187,7 +178,7 @@ def test_lock_wait_from_environment(db, base) -> None:
     with hold(db, "write") as holder:
         t0 = time.monotonic()
         res = subprocess.run([TALLYWAVE, "--db", str(db), "score"], capture_output=True,
-                             text=True, env=_env(TALLYWAVE_LOCK_WAIT="0.5"), timeout=60,
+                             text=True, env=cli_env(TALLYWAVE_LOCK_WAIT="0.5"), timeout=60,
                              check=False)
         assert time.monotonic() - t0 < 25  # not the 30 s default
         _assert_busy_line(res, holder)
@@ -225,7 +216,7 @@ def test_two_runs_started_at_once_both_publish_in_turn(db, base) -> None:
     """Two runs of one date started together: the second waits, then supersedes the first."""
     args = [sys.executable, "-c", RUNNER, str(db), base["as_of"], str(base["settings"])]
     procs = [subprocess.Popen(args, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
-                              env=_env()) for _ in range(2)]
+                              env=cli_env()) for _ in range(2)]
     outs = [p.communicate(timeout=300) for p in procs]
     for p, (_out, err) in zip(procs, outs, strict=True):
         assert p.returncode == 0, err[-2000:]
@@ -253,7 +244,7 @@ def test_two_cli_runs_at_once_one_line_for_the_loser(prefect_server, db, base) -
     and no flow traceback reaches the console; otherwise both publish in turn."""
     import prefect.settings
 
-    env = _env(PREFECT_API_URL=str(prefect.settings.PREFECT_API_URL.value()))
+    env = cli_env(PREFECT_API_URL=str(prefect.settings.PREFECT_API_URL.value()))
     args = [TALLYWAVE, "--db", str(db), "--wait", "1", "run", "--as-of", base["as_of"],
             "--no-report", "--settings", str(base["settings"])]
     procs = [subprocess.Popen(args, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
