@@ -235,15 +235,19 @@ def _holidays(cfg: dict[str, Any], tri: Triangle) -> tuple[np.ndarray, list[str]
 
 
 def tail_history(con: duckdb.DuckDBPyConnection, as_of: dt.date, signal: str, max_delay: int,
-                 days: int, first_as_of: dt.date | None) -> pd.DataFrame:
+                 days: int, first_as_of: dt.date | None, step: int = 1, offset: int = 0
+                 ) -> pd.DataFrame:
     """Per reference date of the last ``days`` that is at least ``max_delay`` days old: the
     signal's reports at delays < D (summed over regions), those at delays >= D known on as_of,
     and how many tail delays it has had (age).  Dates whose first D days preceded the first
-    snapshot are left out (their split is unknown)."""
+    snapshot are left out (their split is unknown).  A weekly signal (``step`` 7) counts
+    ``max_delay`` and the age in weeks, delay k being ``offset + 7 k`` days after the week's
+    date (the triangle's report grid, see :func:`build_triangles`)."""
     D = int(max_delay)
+    last_before = offset + step * (D - 1)  # days after the ref date of delay D - 1
     lo = as_of - dt.timedelta(days=days - 1)
     if first_as_of is not None:
-        lo = max(lo, first_as_of - dt.timedelta(days=D - 1))
+        lo = max(lo, first_as_of - dt.timedelta(days=last_before))
     df = con.execute(
         """WITH k AS (
                SELECT region, ref_date,
@@ -255,9 +259,9 @@ def tail_history(con: duckdb.DuckDBPyConnection, as_of: dt.date, signal: str, ma
                GROUP BY region, ref_date)
            SELECT ref_date, sum(v_before) AS before, sum(v_latest - v_before) AS seen
            FROM k GROUP BY ref_date ORDER BY ref_date""",
-        [D, signal, as_of, lo, as_of - dt.timedelta(days=D)]).df()
+        [last_before + 1, signal, as_of, lo, as_of - dt.timedelta(days=offset + step * D)]).df()
     ref = pd.to_datetime(df["ref_date"]).dt.date
-    df["age"] = [(as_of - r).days - D + 1 for r in ref]
+    df["age"] = [((as_of - r).days - offset) // step - D + 1 for r in ref]
     return df
 
 
@@ -460,9 +464,10 @@ def _nowcast_signal(con: duckdb.DuckDBPyConnection, as_of: dt.date, run_id: str,
         return None
     tri, then = got
     history = None
-    if tri.tail and step == 1:  # weekly: the tail's shape comes from the triangle itself
+    if tri.tail:
         history = tail_history(con, as_of, signal, int(cfg["max_delay_days"]),
-                               int(cfg["nowcast_tail_days"]), firsts.get(signal))
+                               int(cfg["nowcast_tail_days"]), firsts.get(signal), step,
+                               int((np.datetime64(as_of, "D") - tri.dates[-1]).astype(int)))
     # parents of a region hierarchy are sums of their children: pooling them too would count
     # every report twice, so the signal-level structure is fitted on the leaf regions
     leaves = _leaf_rows(con, tri.regions)
