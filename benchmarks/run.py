@@ -788,7 +788,7 @@ def _stage_limits(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Any,
         model = CompartmentalModel(latent_days=float(cfg0["latent_days"]),
                                    infectious_days=float(cfg0["infectious_days"]),
                                    window_weeks=int(cfg0["fit_window_weeks"]),
-                                   seed=int(cfg0["seed"]))
+                                   random_state=int(cfg0["seed"]))
         model.fit({s: series[s][sl] for s in sigs}, pop[sl])
         return int(np.sum(model.converged_))
 

@@ -7,6 +7,8 @@ is the (weighted) mean or median across models of their q-quantiles.  Both opera
 monotone in every input, so monotone inputs give a monotone ensemble; a final running maximum
 along the quantile axis removes rounding-level violations.  Missing (NaN) forecasts of a model
 for some series are skipped and the remaining weights renormalised.
+
+:func:`inverse_score_weights` turns members' past scores into weights for a weighted ensemble.
 """
 
 from __future__ import annotations
@@ -76,3 +78,34 @@ def quantile_ensemble(
     good = np.isfinite(out).all(axis=-1, keepdims=True)
     mono = np.maximum.accumulate(np.where(good, out, -np.inf), axis=-1)
     return np.where(good, mono, out)
+
+
+def inverse_score_weights(
+    wis: np.ndarray, *, power: float = 1.0, min_forecasts: int = 1
+) -> tuple[np.ndarray, int]:
+    """Member weights from their past scores: w_m ∝ (mean WIS of m)^-power, summing to 1.
+
+    ``wis`` (n_forecasts, n_models) holds each member's WIS on the **same** past forecasts
+    (region × issue date × horizon), so a member is not rewarded for having been scored on easy
+    days only.  Inverse-score weighting of quantile forecasts: Taylor & Taylor (2023, Eur J Oper
+    Res) and the trained ensembles of Ray et al. (2023, Int J Forecasting) (both cited from
+    memory); power 0 gives equal weights.  Rows with a missing score are
+    dropped; with fewer than ``min_forecasts`` rows left (or a non-positive mean) the weights are
+    equal.  Returns (weights, number of forecasts used).
+    """
+    w = np.asarray(wis, dtype=float)
+    if w.ndim != 2 or w.shape[1] == 0:
+        raise ValueError(f"wis must be (n_forecasts, n_models), got {w.shape}")
+    if not power >= 0:
+        raise ValueError(f"power must be >= 0, got {power}")
+    rows = np.all(np.isfinite(w), axis=1)
+    n = int(rows.sum())
+    m = w.shape[1]
+    if n < max(int(min_forecasts), 1):
+        return np.full(m, 1.0 / m), n
+    mean = w[rows].mean(axis=0)
+    if np.any(mean <= 0):  # a perfect record: all the weight on the perfect members
+        raw = (mean <= 0).astype(float)
+    else:
+        raw = mean ** (-float(power))
+    return raw / raw.sum(), n

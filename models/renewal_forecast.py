@@ -1,7 +1,24 @@
 """Renewal-equation projection of daily incidence from samples of the current R.
 
-Latent path ``mu_{T+h} = R_{T+h} * sum_s w_s I_{T+h-s}`` with random-walk drift on log R and
-negative-binomial observation noise.  Estimation of R_t itself: :mod:`tallywave.models.renewal`.
+Latent path ``mu_{T+h} = R_{T+h} * sum_s w_s I_{T+h-s}`` with observed history for past days and
+earlier latent values for projected days.  What moves R beyond the data, and why (each piece was
+measured on simulated outbreaks, ``benchmarks/forecast_eval.py``):
+
+* **drift**: log R follows a random walk with sd ``log_r_sd`` per day.  Its effect on incidence
+  compounds (the log of incidence integrates log R), so the spread of a 28-day projection grows
+  like h^1.5; ``log_r_sd`` should be estimated from the series' own history of R
+  (:func:`estimate_log_r_drift`) rather than typed in.
+* **damping**: log R_{T+h} relaxes toward 0 (R toward 1) with half-life ``damping_days``
+  (damped trend, Gardner & McKenzie 1985): an error in today's R then stops compounding after a
+  few generations instead of growing without bound.  ``None`` switches it off.
+* **depletion**: with a ``capacity`` per series (the number of further counts that would use up
+  the susceptible pool: susceptibles × the signal's ascertainment), R is scaled by the share of
+  that pool still left, so a projection cannot outrun the population.
+* **observation noise**: negative binomial with mean mu and variance mu + mu^2 / ``dispersion``
+  (a number or one per series; :func:`estimate_dispersion` estimates it from the recent series),
+  added once on top of the latent path (the latent path itself carries no count noise).
+
+Estimation of R_t itself: :mod:`tallywave.models.renewal`.
 """
 
 from __future__ import annotations
@@ -11,53 +28,190 @@ from typing import Any
 
 import numpy as np
 
-from tallywave.models.renewal import _as_incidence, _check_q_levels, resolve_interval
+from tallywave.models.base import QuantileForecast, RandomState, SeriesRandom
+from tallywave.models.renewal import (
+    CoriEstimator,
+    _as_incidence,
+    _check_q_levels,
+    resolve_interval,
+)
 
-__all__ = ["RenewalForecaster"]
+__all__ = ["RenewalForecaster", "estimate_dispersion", "estimate_log_r_drift", "one_step_expected",
+           "sample_r"]
+
+#: Bounds of an estimated negative-binomial size (below 1 a daily count is wilder than a
+#: geometric one; above 1e4 it is Poisson for any count seen in practice).
+DISPERSION_BOUNDS = (1.0, 1e4)
+
+
+def estimate_dispersion(y: np.ndarray, window: int = 42, skip_last: int = 3,
+                        pooled: float | None = None, expected: np.ndarray | None = None
+                        ) -> np.ndarray:
+    """Negative-binomial size k per series (n_series, T) from the recent days: moments of the
+    residuals around an expected value, Var = m + m^2 / k.
+
+    ``expected`` (n_series, T): e.g. one-step-ahead renewal predictions, whose errors are what a
+    projection meets on its first day (NaN where unknown).  Without it, a centred 7-day mean:
+    it includes the day itself, which removes (1/7) of the day's own noise from the residual, so
+    the residual variance is scaled back by 7/6.  Only the last ``window`` days before the last
+    ``skip_last`` are used.  Series with too little information get ``pooled`` (or the median of
+    the others).  Clipped to :data:`DISPERSION_BOUNDS`.
+    """
+    arr = np.atleast_2d(np.asarray(y, dtype=float))
+    n, t = arr.shape
+    k_out = np.full(n, np.nan)
+    if expected is not None:
+        mu = np.atleast_2d(np.asarray(expected, dtype=float))
+        sl = slice(max(t - skip_last - window, 0), t - skip_last)
+        yy, mm = arr[:, sl], mu[:, sl]
+        ok = np.isfinite(yy) & np.isfinite(mm) & (mm > 0)
+        excess = np.where(ok, (yy - mm) ** 2 - mm, 0.0).sum(axis=1)
+        m2 = np.where(ok, mm ** 2, 0.0).sum(axis=1)
+        enough = (np.where(ok, mm, 0.0).sum(axis=1) >= 5.0 * ok.sum(axis=1) / 7.0) & \
+            (ok.sum(axis=1) >= 7)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            k_out = np.where(enough, np.where(excess > 0, m2 / excess, DISPERSION_BOUNDS[1]),
+                             np.nan)
+    elif t >= 7 + skip_last:
+        x = np.nan_to_num(arr)
+        c = np.cumsum(np.concatenate([np.zeros((n, 1)), x], axis=1), axis=1)
+        m = (c[:, 7:] - c[:, :-7]) / 7.0  # mean of days j..j+6, centred on j+3
+        centre = np.arange(3, t - 3)
+        keep = centre[(centre >= t - skip_last - window) & (centre < t - skip_last)]
+        if keep.size >= 7:
+            yy = x[:, keep]
+            mm = m[:, keep - 3]
+            excess = ((yy - mm) ** 2).sum(axis=1) * 7.0 / 6.0 - mm.sum(axis=1)
+            m2 = (mm ** 2).sum(axis=1)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                k_out = np.where(excess > 0, m2 / excess, DISPERSION_BOUNDS[1])
+            k_out = np.where(mm.sum(axis=1) >= 5.0 * keep.size / 7.0, k_out, np.nan)
+    fallback = pooled
+    if fallback is None:
+        fallback = float(np.nanmedian(k_out)) if np.isfinite(k_out).any() else 20.0
+    k_out = np.where(np.isfinite(k_out), k_out, fallback)
+    return np.clip(k_out, *DISPERSION_BOUNDS)
+
+
+def one_step_expected(y: np.ndarray, interval_pmf: Any, window: int = 7) -> np.ndarray:
+    """One-day-ahead renewal predictions (n_series, T): R estimated up to day t - 1 (Cori et
+    al. 2013 posterior mean, flat-ish prior) times the infectiousness of day t; NaN where R
+    cannot be estimated.  Their errors are what a projection meets on its first day."""
+    arr = np.nan_to_num(np.atleast_2d(np.asarray(y, dtype=float)))
+    est = CoriEstimator(window=int(window), prior_shape=1.0, prior_scale=5.0,
+                        min_infections=0.0).fit(arr, interval_pmf)
+    mu = np.full(arr.shape, np.nan)
+    mu[:, 1:] = est.mean_[:, :-1] * est.infectiousness_[:, 1:]
+    return mu
+
+
+def estimate_log_r_drift(r_mean: np.ndarray, log_sd: np.ndarray | None = None, lag: int = 7,
+                         bounds: tuple[float, float] = (0.005, 0.08),
+                         max_log_sd: float = 0.3, robust: bool = True) -> float:
+    """Random-walk sd per day of log R from a history of R estimates (n_series, T).
+
+    Uses changes of log R over ``lag`` days (the estimator's window, so the two estimates share
+    no data): E[change^2] = lag × sd^2 + the estimation variance of both ends, which ``log_sd``
+    (the posterior sd of log R per cell, e.g. (q95 - q05) / (2 × 1.645 × mean)) lets us remove.
+    Cells estimated more loosely than ``max_log_sd`` are left out.  ``robust``: the spread of the
+    changes from their median absolute value, so the few large steps of an intervention (a jump,
+    not a drift) do not set the day-to-day drift of every projection.  Pooled over every series
+    (so a region with a short history borrows from the others), clipped to ``bounds``; the upper
+    bound is also the answer when fewer than 10 changes are usable.
+    """
+    r = np.asarray(r_mean, dtype=float)
+    if r.ndim != 2 or r.shape[1] <= lag:
+        return float(bounds[1])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        d = np.log(r[:, lag:]) - np.log(r[:, :-lag])
+    if log_sd is None:
+        noise = np.zeros_like(d)
+    else:
+        sd = np.asarray(log_sd, dtype=float)
+        sd = np.where(sd <= max_log_sd, sd, np.nan)
+        noise = sd[:, lag:] ** 2 + sd[:, :-lag] ** 2
+    ok = np.isfinite(d) & np.isfinite(noise)
+    if ok.sum() < 10:
+        return float(bounds[1])
+    if robust:  # scale from the median absolute change (normal consistency 1.4826)
+        total = (1.4826 * float(np.median(np.abs(d[ok])))) ** 2
+    else:
+        total = float((d[ok] ** 2).mean())
+    var = (total - float(np.median(noise[ok]) if robust else noise[ok].mean())) / lag
+    return float(np.clip(np.sqrt(max(var, 0.0)), *bounds))
+
+
+def sample_r(shape: np.ndarray, scale: np.ndarray, weights: np.ndarray, n_draws: int,
+             rnd: SeriesRandom) -> np.ndarray:
+    """Draws (n_draws, n_series) of R from a gamma-mixture posterior of one day.
+
+    ``shape`` / ``scale``: (n_components, n_series) (e.g. a fitted Cori estimator's ``shape_`` /
+    ``scale_`` at the last day); ``weights``: (n_components,).  One random stream per series, so
+    a series' draws do not depend on the others.  NaN where a series has no posterior.
+    """
+    a = np.atleast_2d(np.asarray(shape, dtype=float))
+    th = np.atleast_2d(np.asarray(scale, dtype=float))
+    w = np.asarray(weights, dtype=float)
+    cum = np.cumsum(w / w.sum())
+    u = rnd.uniform((int(n_draws),))  # (n_series, n_draws)
+    comp = np.minimum(np.searchsorted(cum, u), a.shape[0] - 1)
+    cols = np.arange(a.shape[1])[:, None]
+    valid = np.all(np.isfinite(a), axis=0)
+    a_s = np.where(valid[:, None], a[comp, cols], 1.0)
+    th_s = np.where(valid[:, None], th[comp, cols], 1.0)
+    out = rnd.gamma(a_s, th_s)
+    out[~valid] = np.nan
+    return out.T
 
 
 class RenewalForecaster:
     """Project daily incidence with the renewal equation from samples of the current R.
 
-    Latent path: mu_{T+h} = R_{T+h} * sum_s w_s I_{T+h-s}, with observed history for past days
-    and earlier latent values mu for projected days; log R_{T+h} = log R_T + sum of h
-    N(0, ``log_r_sd``^2) steps (``log_r_sd = 0``: R held fixed). Observations: negative binomial
-    with mean mu and variance mu + mu^2 / ``dispersion`` (Poisson when ``dispersion`` is None).
+    Parameters: ``horizon`` (days), ``log_r_sd`` (random-walk sd of log R per day),
+    ``damping_days`` (half-life of log R toward 0, None = none), ``dispersion`` (negative-binomial
+    size, a number or None for Poisson; ``fit`` may override it per series), ``random_state``.
     """
 
     def __init__(
         self,
+        *,
         horizon: int = 28,
         log_r_sd: float = 0.0,
+        damping_days: float | None = None,
         dispersion: float | None = None,
-        seed: int | None = None,
+        random_state: RandomState = None,
     ) -> None:
         self.horizon = horizon
         self.log_r_sd = log_r_sd
+        self.damping_days = damping_days
         self.dispersion = dispersion
-        self.seed = seed
+        self.random_state = random_state
 
-    def fit(self, incidence: Any, interval_pmf: Any, r_samples: Any) -> RenewalForecaster:
-        """Store history (n_series, T) or draws (n_draws, n_series, T), the interval and R draws.
+    def fit(self, incidence: Any, interval_pmf: Any, r_samples: Any, *,
+            dispersion: Any = None, capacity: Any = None) -> RenewalForecaster:
+        """Store history (n_series, T) or draws (n_draws, n_series, T), the interval, R draws.
 
-        ``r_samples`` is (n_draws, n_series) (e.g. :meth:`CoriEstimator.sample`); history draws
-        and R draws are paired by index (either may have a single draw, which is broadcast).
-        Only the last ``len(pmf) - 1`` days of history matter; missing earlier days count as 0.
+        ``r_samples`` is (n_draws, n_series); history draws and R draws are paired by index
+        (either may have a single draw, which is broadcast).  ``dispersion``: per-series sizes
+        (n_series,) overriding the constructor's; ``capacity``: per-series counts that would use
+        up the susceptible pool (NaN / None = no depletion).  Only the last ``len(pmf) - 1`` days
+        of history matter; missing earlier days count as 0.
         """
         if int(self.horizon) != self.horizon or self.horizon < 1:
             raise ValueError(f"horizon must be a positive integer, got {self.horizon}")
         if not self.log_r_sd >= 0.0:
             raise ValueError("log_r_sd must be >= 0")
-        if self.dispersion is not None and not self.dispersion > 0.0:
-            raise ValueError("dispersion must be > 0 (or None for Poisson)")
+        if self.damping_days is not None and not self.damping_days > 0.0:
+            raise ValueError("damping_days must be > 0 (or None)")
         w = resolve_interval(interval_pmf)
         hist = _as_incidence(incidence, 3, "incidence")
         r = np.asarray(r_samples, dtype=float)
         if r.ndim == 1:
             r = r[:, None]
-        if r.ndim != 2 or r.shape[1] != hist.shape[1]:
+        n_series = hist.shape[1]
+        if r.ndim != 2 or r.shape[1] != n_series:
             raise ValueError(
-                f"r_samples must be (n_draws, n_series={hist.shape[1]}), got {np.shape(r_samples)}"
+                f"r_samples must be (n_draws, n_series={n_series}), got {np.shape(r_samples)}"
             )
         if np.any(~(r >= 0.0)):
             raise ValueError("r_samples must be non-negative and not NaN")
@@ -66,6 +220,15 @@ class RenewalForecaster:
                 f"history has {hist.shape[0]} draws but r_samples has {r.shape[0]}; "
                 "they must match or one must be 1"
             )
+        k = self.dispersion if dispersion is None else dispersion
+        if k is None:
+            disp = np.full(n_series, np.inf)
+        else:
+            disp = np.broadcast_to(np.asarray(k, dtype=float), (n_series,)).copy()
+            if np.any(~(disp > 0.0)):
+                raise ValueError("dispersion must be > 0 (or None for Poisson)")
+        cap = np.full(n_series, np.nan) if capacity is None else \
+            np.broadcast_to(np.asarray(capacity, dtype=float), (n_series,)).copy()
         lag = w.size - 1
         if hist.shape[-1] < lag:
             pad = np.zeros(hist.shape[:-1] + (lag - hist.shape[-1],))
@@ -74,56 +237,81 @@ class RenewalForecaster:
         self.history_ = hist[..., hist.shape[-1] - lag :] if lag > 0 else hist[..., :0]
         self.r_samples_ = r
         self.n_draws_ = max(hist.shape[0], r.shape[0])
-        self.samples_: np.ndarray | None = None
+        self.dispersion_ = disp
+        self.capacity_ = cap
         return self
 
-    def sample(self, seed: int | None = None) -> np.ndarray:
+    def _r_paths(self, rnd: SeriesRandom) -> np.ndarray:
+        """log R per draw, series and day (n_draws, n_series, horizon): drift and damping."""
+        h_max, n_draws = int(self.horizon), self.n_draws_
+        n_series = self.r_samples_.shape[1]
+        with np.errstate(divide="ignore"):
+            log_r0 = np.log(np.broadcast_to(self.r_samples_, (n_draws, n_series)))
+        steps = np.zeros((n_draws, n_series, h_max))
+        if self.log_r_sd > 0.0:
+            steps = np.moveaxis(rnd.normal((n_draws, h_max)), 0, 1) * float(self.log_r_sd)
+        phi = 1.0 if self.damping_days is None else 0.5 ** (1.0 / float(self.damping_days))
+        out = np.empty((n_draws, n_series, h_max))
+        cur = log_r0
+        for h in range(h_max):  # AR(1) on log R (a random walk when phi = 1)
+            cur = phi * cur + steps[..., h]
+            out[..., h] = cur
+        return out
+
+    def sample(self) -> np.ndarray:
         """Simulate observed incidence for h = 1..horizon: (n_draws, n_series, horizon).
 
-        Also sets ``expected_`` (latent means) and ``r_paths_`` (R per day), same shape.
+        Also sets ``expected_`` (latent means) and ``r_paths_`` (R per day, after depletion),
+        same shape.  Rebuilt from ``random_state`` on every call.
         """
         if not hasattr(self, "history_"):
             raise RuntimeError("RenewalForecaster is not fitted; call fit() first")
-        rng = np.random.default_rng(self.seed if seed is None else seed)
         h_max = int(self.horizon)
         n_draws = self.n_draws_
         n_series = self.r_samples_.shape[1]
+        rnd = SeriesRandom(self.random_state, n_series)
         lag = self.interval_.size - 1
         buf = np.zeros((n_draws, n_series, lag + h_max))
         buf[..., :lag] = self.history_
         w_rev = self.interval_[1:][::-1]  # w_lag .. w_1, aligned with buf[t-lag .. t-1]
-        log_r = np.log(np.broadcast_to(self.r_samples_, (n_draws, n_series)))
-        if self.log_r_sd > 0.0:
-            steps = rng.normal(0.0, self.log_r_sd, size=(n_draws, n_series, h_max))
-            log_r = log_r[..., None] + np.cumsum(steps, axis=-1)
-        else:
-            log_r = np.broadcast_to(log_r[..., None], (n_draws, n_series, h_max))
-        with np.errstate(divide="ignore"):
-            r_path = np.exp(log_r)
+        with np.errstate(over="ignore"):
+            r_path = np.exp(self._r_paths(rnd))
+        cap = self.capacity_
+        deplete = np.isfinite(cap) & (cap > 0)
+        used = np.zeros((n_draws, n_series))
         for h in range(h_max):  # the renewal recursion is sequential in time only
             t = lag + h
-            buf[..., t] = r_path[..., h] * (buf[..., t - lag : t] @ w_rev)
-        mu = buf[..., lag:]
-        if self.dispersion is None or np.isinf(self.dispersion):
-            obs = rng.poisson(mu).astype(float)
-        else:
-            k = float(self.dispersion)
-            obs = rng.negative_binomial(k, k / (k + mu)).astype(float)
+            r_h = r_path[..., h]
+            if deplete.any():
+                left = np.clip(1.0 - used / np.where(deplete, cap, 1.0), 0.0, 1.0)
+                r_h = np.where(deplete[None], r_h * left, r_h)
+                r_path[..., h] = r_h
+            buf[..., t] = r_h * np.einsum("dsl,l->ds", buf[..., t - lag : t], w_rev)
+            used += buf[..., t]
+        mu = np.nan_to_num(buf[..., lag:], nan=0.0, posinf=1e12)
+        mu = np.minimum(mu, 1e12)
+        k = self.dispersion_
+        obs = np.moveaxis(rnd.negative_binomial(np.moveaxis(mu, 1, 0),
+                                                np.where(np.isinf(k), 1e12, k)[:, None, None]),
+                          0, 1)
         self.expected_ = mu
-        self.r_paths_ = np.array(r_path)
-        self.samples_ = obs
+        self.r_paths_ = r_path
         return obs
 
-    def quantiles(self, q_levels: Sequence[float] | np.ndarray) -> np.ndarray:
-        """Forecast quantiles (n_series, horizon, n_q) from the samples (drawn if needed).
-
-        Non-negative, and monotone in q for increasing ``q_levels``.
-        """
-        q = _check_q_levels(q_levels)
-        samples = getattr(self, "samples_", None)
-        if samples is None:
-            samples = self.sample()
-        out = np.moveaxis(np.quantile(samples, q, axis=0), 0, -1)
+    def forecast(self, levels: Sequence[float] | np.ndarray) -> QuantileForecast:
+        """Forecast quantiles for days 1..horizon (series × horizon × level), >= 0, monotone."""
+        q = _check_q_levels(levels)
         order = np.argsort(q)
-        out[..., order] = np.maximum.accumulate(out[..., order], axis=-1)  # guard ties/round-off
-        return np.maximum(out, 0.0)
+        samples = self.sample()
+        out = np.moveaxis(np.quantile(samples, q[order], axis=0), 0, -1)
+        out = np.maximum(np.maximum.accumulate(out, axis=-1), 0.0)
+        return QuantileForecast(out, q[order], np.arange(1, int(self.horizon) + 1),
+                                model="renewal")
+
+    def quantiles(self, q_levels: Sequence[float] | np.ndarray) -> np.ndarray:
+        """Forecast quantiles as an array (n_series, horizon, n_q) in the order of ``q_levels``."""
+        q = _check_q_levels(q_levels)
+        fc = self.forecast(q)
+        out = np.empty_like(fc.values)
+        out[..., np.argsort(q)] = fc.values
+        return out

@@ -1,13 +1,21 @@
-"""Stage 6 — forecast: fit the models, publish forecast quantiles → ``out.fits``, ``out.forecasts``.
+"""Stage 6 — forecast: fit the models, publish forecast quantiles → ``out.fits``, ``out.forecasts``,
+``out.ensemble_weights``, ``out.scenarios``.
 
-Models (``models`` setting): ``baseline`` (flat level, empirical changes), ``renewal`` (R_t
-projected with the renewal equation), ``compartmental`` (S-E-I-R-D refitted jointly to the
-cases, admissions and deaths of each region, warm-started from the previous run's fit) and
-``ensemble`` (quantile average of the others).  Every model forecasts the weekday-adjusted,
+Models (``models`` setting): ``baseline`` (flat level, spread from the observed h-day changes;
+the yardstick, never an ensemble member), ``compartmental`` (S-E-I-R-D refitted jointly to the
+cases, admissions and deaths of each region, warm-started from the previous run's fit),
+``renewal`` (R_t projected with the renewal equation: estimated dispersion and drift, damping,
+susceptible depletion from the compartmental fit), ``ensemble`` (quantile median or mean of the
+members) and ``ensemble_weighted`` (quantile mean weighted by the members' recent scores,
+:mod:`tallywave.pipeline.ensemble_weights`).  Scenario projections run through the compartmental
+model (:mod:`tallywave.pipeline.scenarios`).  Every model forecasts the weekday-adjusted,
 nowcast-corrected series; the quantiles are then multiplied by the weekday effect of each target
 date, so forecasts are in the same units as the reports they will be scored against.
-Mathematics: :mod:`tallywave.models.baseline`, :mod:`tallywave.models.renewal`, :mod:`tallywave.models.compartmental`,
-:mod:`tallywave.models.ensemble`.
+
+Results never depend on batching: every random stream belongs to one (seed, signal, region)
+(:func:`tallywave.models.base.series_seeds`) and everything pooled over regions (the pooled R_t
+of small regions, the drift, the dispersion fallback) is computed over all regions of the signal
+before the batches are handed out.
 """
 
 from __future__ import annotations
@@ -20,15 +28,24 @@ import duckdb
 import numpy as np
 import pandas as pd
 
+from tallywave.models.base import SeriesRandom, series_seeds
 from tallywave.models.baseline import FlatBaseline
 from tallywave.models.compartmental import CompartmentalModel
 from tallywave.models.ensemble import quantile_ensemble
 from tallywave.models.incidence import incidence_draws, median_corrected
 from tallywave.models.renewal import CoriEstimator
-from tallywave.models.renewal_forecast import RenewalForecaster
+from tallywave.models.renewal_forecast import (
+    RenewalForecaster,
+    estimate_dispersion,
+    estimate_log_r_drift,
+    one_step_expected,
+    sample_r,
+)
 from tallywave.pipeline.clean import cleaned_blocks
+from tallywave.pipeline.ensemble_weights import MEMBERS, scoreboard_weights, weight_array
 from tallywave.pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
 from tallywave.pipeline.nowcast import nowcast_quantiles
+from tallywave.pipeline.scenarios import describe, multipliers, scenario_frame, write_scenarios
 from tallywave.pipeline.settings import Settings
 from tallywave.pipeline.store import insert_df
 from tallywave.pipeline.transmission import interval_pmfs, nowcast_draws_for, rt_span
@@ -37,14 +54,15 @@ COMPARTMENTAL_SIGNALS = ("cases", "admissions", "deaths")
 RENEWAL_HISTORY_DAYS = 90
 COMPARTMENTAL_BURN_IN_DAYS = 60  # history before the fit window (burn-in, people infected)
 DEFAULT_POPULATION = 1_000_000.0  # used (and said in out.fits) when a region's size is unknown
+POOLED = "(pooled regions)"  # the random stream of a signal's pooled R_t
 
 
 # ----------------------------------------------------------------------------- pure batch jobs
 
 def _baseline_job(args: tuple) -> np.ndarray:
-    y, cfg, seed = args
-    m = FlatBaseline(q_levels=cfg["quantiles"], seed=seed).fit(y)
-    return m.quantiles(int(cfg["horizon_days"]), cfg["quantiles"])
+    y, cfg = args
+    m = FlatBaseline(scale=str(cfg["baseline_scale"])).fit(y)
+    return m.forecast(int(cfg["horizon_days"]), cfg["quantiles"]).values
 
 
 def _cori(cfg: dict[str, Any]) -> CoriEstimator:
@@ -53,52 +71,81 @@ def _cori(cfg: dict[str, Any]) -> CoriEstimator:
                          prior_scale=sd ** 2 / mean, min_infections=float(cfg["rt_min_infections"]))
 
 
-def _renewal_job(args: tuple) -> dict[str, Any]:
-    """Renewal forecasts for one batch: R_t draws at the last day (mixed over nowcast draws)
-    projected forward; a region too small for its own R_t uses the R_t of the batch's regions
-    pooled (their summed incidence), and says so."""
-    values, eventual, rep, start, cfg, seed = args
-    # Only the last days matter: the last day's R_t (its window and the interval before it),
-    # the projection's lags (shorter) and the nowcast window; older days change nothing.
+def _last_day_r(est: CoriEstimator, n_draws: int, rnd: SeriesRandom) -> np.ndarray:
+    """Draws (n_draws, n_series) of R on the last day of a fitted Cori estimator."""
+    shape = est.shape_ if est.n_components_ > 1 else est.shape_[None]
+    scale = est.scale_ if est.n_components_ > 1 else est.scale_[None]
+    return sample_r(shape[..., -1], scale[..., -1], est.weights_, n_draws, rnd)
+
+
+def _renewal_draws(values: np.ndarray, eventual: np.ndarray, rep: np.ndarray, start: int,
+                   cfg: dict[str, Any]) -> tuple[np.ndarray, int]:
+    """Incidence draws of the days that matter (the last day's R_t, the projection's lags and
+    the nowcast window; older days change nothing) and the number of draws."""
     need = max(rt_span(cfg), values.shape[1] - start)
     t_keep = min(values.shape[1], RENEWAL_HISTORY_DAYS, need)
     cut = values.shape[1] - t_keep
-    values = np.nan_to_num(values[:, cut:])
     n_draws = int(cfg["forecast_draws"])
     # the nowcast's joint draws, reused cyclically when fewer than n_draws were kept
     eventual = eventual[np.arange(n_draws) % max(eventual.shape[0], 1)]
-    draws = incidence_draws(values, eventual, rep, start - cut)
+    return incidence_draws(np.nan_to_num(values[:, cut:]), eventual, rep, start - cut), n_draws
+
+
+def _renewal_job(args: tuple) -> dict[str, Any]:
+    """Renewal forecasts for one batch: R_t draws at the last day (mixed over nowcast draws)
+    projected forward; a region too small for its own R_t uses the signal's pooled R_t (computed
+    over all its regions before batching), and says so."""
+    values, eventual, rep, start, cfg, seeds, pooled_r, dispersion, capacity, drift = args
+    draws, n_draws = _renewal_draws(values, eventual, rep, start, cfg)
     pmfs = interval_pmfs(cfg)
     interval = pmfs if len(pmfs) > 1 else pmfs[0]
-    r = _cori(cfg).fit_draws(draws, interval).sample(n_draws, day=-1, seed=seed)
+    rnd = SeriesRandom(seeds, len(seeds))
+    r = _last_day_r(_cori(cfg).fit_draws(draws, interval), n_draws, rnd)
     own = np.all(np.isfinite(r), axis=0)
     source = np.where(own, "own", "none").astype(object)
-    if not own.all():
-        pooled = _cori(cfg).fit_draws(draws.sum(axis=1, keepdims=True), interval)
-        rp = pooled.sample(n_draws, day=-1, seed=seed + 1)
-        if np.all(np.isfinite(rp)):
-            r[:, ~own] = rp
-            source[~own] = "pooled"
+    if not own.all() and pooled_r is not None:
+        r[:, ~own] = pooled_r[:, None]
+        source[~own] = "pooled"
     ok = source != "none"
     r = np.where(ok[None], r, 1.0)
-    fc = RenewalForecaster(horizon=int(cfg["horizon_days"]), log_r_sd=float(cfg["drift_sd"]),
-                           dispersion=20.0, seed=seed)
-    out = fc.fit(draws, pmfs[0], r).quantiles(cfg["quantiles"])
+    damping = float(cfg["renewal_damping_days"])
+    fc = RenewalForecaster(horizon=int(cfg["horizon_days"]), log_r_sd=drift,
+                           damping_days=damping if damping > 0 else None,
+                           random_state=[np.random.SeedSequence(s.entropy,
+                                                                spawn_key=(*s.spawn_key, 1))
+                                         for s in seeds])
+    fc.fit(draws, pmfs[0], r, dispersion=dispersion, capacity=capacity)
+    out = fc.quantiles(cfg["quantiles"])
     out[~ok] = np.nan
     return {"q": out, "source": source, "r_median": np.median(r, axis=0)}
 
 
 def _compartmental_job(args: tuple) -> dict[str, Any]:
-    observed, population, init, cfg, seed = args
-    model = CompartmentalModel(latent_days=float(cfg["latent_days"]),
-                               infectious_days=float(cfg["infectious_days"]),
-                               window_weeks=int(cfg["fit_window_weeks"]),
-                               drift_sd=float(cfg["drift_sd"]) * np.sqrt(7.0),
-                               n_draws=int(cfg["forecast_draws"]), q_levels=cfg["quantiles"],
-                               seed=seed)
-    model.fit(observed, population, init=init)
-    fc = model.forecast(int(cfg["horizon_days"]), cfg["quantiles"], rng=seed)
-    return {"q": fc, "params": model.params_, "objective": np.asarray(model.objective_),
+    """Fit one batch of regions jointly over the signals; forecast and run the scenarios."""
+    observed, population, init, prior, immune, cfg, seeds, drift, scen, noise = args
+    delays = cfg["compartmental_delays"]
+    fracs = cfg["compartmental_fractions"]
+    model = CompartmentalModel(
+        latent_days=float(cfg["latent_days"]), infectious_days=float(cfg["infectious_days"]),
+        ifr=float(fracs["deaths"]), rho=float(fracs["cases"]),
+        hosp_frac=float(fracs["admissions"]), case_delay=tuple(delays["cases"]),
+        admission_delay=tuple(delays["admissions"]), death_delay=tuple(delays["deaths"]),
+        window_weeks=int(cfg["fit_window_weeks"]), method=str(cfg["ode_method"]),
+        dt=1.0 / max(int(cfg["ode_steps_per_day"]), 1),
+        fraction_prior_sd=dict(cfg["fraction_prior_sd"]),
+        fraction_drift_sd=float(cfg["fraction_drift_sd"]), drift_sd=drift,
+        n_draws=int(cfg["forecast_draws"]), q_levels=cfg["quantiles"], random_state=seeds)
+    model.fit(observed, population, init=init, prior_counts=prior, immune=immune)
+    h = int(cfg["horizon_days"])
+    fc = {s: r.values for s, r in model.forecast(h, cfg["quantiles"],
+                                                 dispersion=noise).items()}
+    scenarios = {name: {s: r.values for s, r in model.forecast(
+        h, cfg["quantiles"], multiplier=m, dispersion=noise).items()} for name, m in scen}
+    capacity = {s: model.susceptible_ * model.population_  # people left to infect ...
+                * model.fraction_path_[s][:, -1]  # ... in the units of the signal
+                for s in model.signals_}
+    return {"q": fc, "scenarios": scenarios, "capacity": capacity, "params": model.params_,
+            "objective": np.asarray(model.objective_),
             "converged": np.asarray(model.converged_), "message": list(model.message_)}
 
 
@@ -119,6 +166,17 @@ def _weekday_factors(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
     eff = np.where(np.isfinite(eff) & (eff > 0), eff, 1.0)
     wd = (targets.astype("datetime64[D]").astype(int) + 3) % 7  # Monday = 0
     return eff[:, wd]
+
+
+def _to_report_units(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
+                     regions: np.ndarray, as_of: dt.date, q: np.ndarray) -> np.ndarray:
+    """Adjusted-scale quantiles (n, H, k) × each target date's weekday effect, monotone."""
+    targets = np.datetime64(as_of, "D") + np.arange(1, q.shape[1] + 1)
+    factor = _weekday_factors(con, run_id, signal, regions, targets)
+    out = np.maximum(q * factor[..., None], 0.0)
+    out = np.maximum.accumulate(np.nan_to_num(out, nan=-1.0), axis=-1)
+    out[out < 0] = np.nan
+    return out
 
 
 def _populations(con: duckdb.DuckDBPyConnection, regions: np.ndarray) -> tuple[np.ndarray,
@@ -143,6 +201,50 @@ def _previous_params(con: duckdb.DuckDBPyConnection, as_of: dt.date,
     return [found.get(r) for r in regions]
 
 
+def _history_totals(con: duckdb.DuckDBPyConnection, run_id: str, before: dt.date,
+                    signal: str, regions: np.ndarray) -> np.ndarray:
+    """Cleaned counts of one signal reported before ``before`` (the whole history) per region:
+    the people already infected, for the compartmental model's susceptible pool."""
+    df = con.execute("SELECT region, sum(value_clean) AS total FROM core.cleaned "
+                     "WHERE run_id = ? AND signal = ? AND ref_date < ? GROUP BY region",
+                     [run_id, signal, before]).df()
+    known = dict(zip(df["region"], df["total"], strict=True))
+    return np.array([float(known.get(r, 0.0) or 0.0) for r in regions])
+
+
+def _rt_drift(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
+              cfg: dict[str, Any]) -> float:
+    """Random-walk sd of log R_t per day for a signal, from this run's R_t history over all its
+    regions (``drift_sd`` is the ceiling, and the answer without history or estimation)."""
+    ceiling = float(cfg["drift_sd"])
+    if not cfg["drift_from_rt"]:
+        return ceiling
+    df = con.execute(
+        """SELECT region, ref_date, mean,
+                  (max(value) FILTER (WHERE abs(q_level - 0.95) < 1e-9)
+                   - max(value) FILTER (WHERE abs(q_level - 0.05) < 1e-9)) AS width
+           FROM out.rt WHERE run_id = ? AND signal = ? AND NOT coalesce(nowcast_dependent, false)
+           GROUP BY region, ref_date, mean""", [run_id, signal]).df()
+    if df.empty:
+        return ceiling
+    wide = df.pivot_table(index="region", columns="ref_date", values="mean")
+    width = df.pivot_table(index="region", columns="ref_date", values="width")
+    width = width.reindex(index=wide.index, columns=wide.columns)
+    log_sd = width.to_numpy(dtype=float) / (2.0 * 1.645 * wide.to_numpy(dtype=float))
+    lag = int(cfg["rt_window_days"])
+    return estimate_log_r_drift(wide.to_numpy(dtype=float), log_sd, lag=lag,
+                                bounds=(min(0.005, ceiling), ceiling))
+
+
+def _noise_sizes(y: np.ndarray, cfg: dict[str, Any]) -> np.ndarray:
+    """Negative-binomial sizes of each region's count noise, from the errors of one-day-ahead
+    renewal predictions over the last six weeks (regions with too few counts: the median of the
+    signal's others, all regions of the signal taken together before batching)."""
+    tail = y[:, -90:]
+    mu = one_step_expected(tail, interval_pmfs(cfg)[0], int(cfg["rt_window_days"]))
+    return estimate_dispersion(tail, expected=mu)
+
+
 def _long(run_id: str, as_of: dt.date, model: str, signal: str, regions: np.ndarray,
           q_levels: list[float], q: np.ndarray) -> pd.DataFrame:
     n, h, k = q.shape
@@ -159,6 +261,35 @@ def _long(run_id: str, as_of: dt.date, model: str, signal: str, regions: np.ndar
     return df[np.isfinite(df["value"].to_numpy())]
 
 
+def _stack(res: list, parts: list[slice], n: int, cfg: dict, skipped: list[str],
+           model: str, signal: str, regions: np.ndarray) -> np.ndarray:
+    """Join batch results; failed batches become NaN and are recorded as skipped."""
+    h, k = int(cfg["horizon_days"]), len(cfg["quantiles"])
+    out = np.full((n, h, k), np.nan)
+    for s, r in zip(parts, res, strict=True):
+        if isinstance(r, BatchFailure):
+            skipped.extend(f"{model}/{signal}/{x}: {r.message[:200]}" for x in regions[s])
+        else:
+            out[s] = r
+    return out
+
+
+class _Run:
+    """What the stage collects while it works: forecasts on the adjusted scale, fits, notes."""
+
+    def __init__(self, con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings,
+                 run_id: str, mapper: Mapper) -> None:
+        self.con, self.as_of, self.settings, self.run_id, self.mapper = (con, as_of, settings,
+                                                                         run_id, mapper)
+        self.results: dict[str, dict[str, np.ndarray]] = {}  # model -> signal -> (n, H, k)
+        self.scenarios: dict[str, dict[str, np.ndarray]] = {}  # scenario -> signal -> (n, H, k)
+        self.capacity: dict[str, np.ndarray] = {}  # signal -> (n,) aligned to its block
+        self.dispersion: dict[str, np.ndarray] = {}  # signal -> (n,) count-noise sizes
+        self.drift: dict[str, float] = {}
+        self.skipped: list[str] = []
+        self.lines: list[str] = []
+
+
 # ----------------------------------------------------------------------------- the stage
 
 def history_days(settings: Settings) -> int:
@@ -169,7 +300,7 @@ def history_days(settings: Settings) -> int:
         cfg = settings.for_signal(signal)
         need = max(need, RENEWAL_HISTORY_DAYS,  # the renewal job's history
                    int(cfg["fit_window_weeks"]) * 7 + COMPARTMENTAL_BURN_IN_DAYS,
-                   FlatBaseline().window_days + 8,  # changes of the 7-day mean, one step back
+                   FlatBaseline().history_days(int(cfg["horizon_days"])),
                    int(cfg["max_delay_days"]) + 1)  # the nowcast window
     return need
 
@@ -180,138 +311,174 @@ def forecast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings,
     blocks = cleaned_blocks(con, run_id, adjusted=True,
                             since=as_of - dt.timedelta(days=history_days(settings) - 1))
     wanted = list(settings.get("models"))
-    results: dict[str, dict[str, np.ndarray]] = {}  # model -> signal -> (n, H, k) adjusted
-    corrected: dict[str, tuple[SeriesBlock, tuple]] = {}
-    skipped: list[str] = []
-    lines: list[str] = []
+    run = _Run(con, as_of, settings, run_id, mapper)
+    corrected: dict[str, tuple[np.ndarray, tuple]] = {}
+    for signal, block in blocks.items():
+        nq = nowcast_quantiles(con, run_id, signal, block)
+        corrected[signal] = (median_corrected(np.nan_to_num(block.values), *nq), nq)
+        run.drift[signal] = _rt_drift(con, run_id, signal, settings.for_signal(signal))
+        run.dispersion[signal] = _noise_sizes(corrected[signal][0], settings.for_signal(signal))
+    if "compartmental" in wanted or ("renewal" in wanted and
+                                     settings.get("renewal_depletion")):
+        _run_compartmental(run, blocks, corrected, publish="compartmental" in wanted)
     for signal, block in blocks.items():
         cfg = settings.for_signal(signal)
-        nq = nowcast_quantiles(con, run_id, signal, block)
-        y = median_corrected(np.nan_to_num(block.values), *nq)
-        corrected[signal] = (block, nq)
+        y = corrected[signal][0]
         parts = batches(len(block.regions), int(cfg["batch_regions"]))
-        seed = int(cfg["seed"])
         if "baseline" in wanted:
-            res = mapper(_baseline_job, [(y[s], cfg, seed + i) for i, s in enumerate(parts)])
-            results.setdefault("baseline", {})[signal] = _stack(res, parts, block, cfg,
-                                                               skipped, "baseline", signal)
+            res = mapper(_baseline_job, [(y[s], cfg) for s in parts])
+            run.results.setdefault("baseline", {})[signal] = _stack(
+                res, parts, len(block.regions), cfg, run.skipped, "baseline", signal,
+                block.regions)
         if "renewal" in wanted:
-            eventual, rep, start = nowcast_draws_for(con, run_id, signal, block,
-                                                     int(cfg["forecast_draws"]), seed)
-            res = mapper(_renewal_job, [(np.nan_to_num(block.values[s]), eventual[:, s], rep[s],
-                                         start, cfg, seed + i) for i, s in enumerate(parts)])
-            _renewal_fits(con, run_id, signal, block, parts, res)
-            res = [r if isinstance(r, BatchFailure) else r["q"] for r in res]
-            results.setdefault("renewal", {})[signal] = _stack(res, parts, block, cfg,
-                                                              skipped, "renewal", signal)
-    if "compartmental" in wanted:
-        _run_compartmental(con, as_of, settings, run_id, blocks, corrected, results, mapper,
-                           skipped, lines)
-    if "ensemble" in wanted:
-        for signal in blocks:
-            members = [results[m][signal] for m in results if signal in results[m]]
-            if members:
-                how = settings.get("ensemble_method", signal)
-                results.setdefault("ensemble", {})[signal] = quantile_ensemble(members,
-                                                                               method=how)
+            _run_renewal(run, signal, block, y, parts)
+    _ensembles(run, blocks, wanted)
     n_rows = 0
-    for model, per_signal in results.items():
+    for model, per_signal in run.results.items():
         for signal, q in per_signal.items():
             block = blocks[signal]
-            cfg = settings.for_signal(signal)
-            h = q.shape[1]
-            targets = np.datetime64(as_of, "D") + np.arange(1, h + 1)
-            factor = _weekday_factors(con, run_id, signal, block.regions, targets)
-            q_out = np.maximum(q * factor[..., None], 0.0)
-            q_out = np.maximum.accumulate(np.nan_to_num(q_out, nan=-1.0), axis=-1)
-            q_out[q_out < 0] = np.nan
-            n_rows += insert_df(con, "out.forecasts", _long(run_id, as_of, model, signal,
-                                                            block.regions, cfg["quantiles"],
-                                                            q_out))
-    lines.insert(0, f"{n_rows} quantile rows for {', '.join(results) or 'no models'}")
-    out = {"line": "; ".join(lines), "rows": n_rows}
-    if skipped:
-        out["skipped"] = skipped
+            q_out = _to_report_units(con, run_id, signal, block.regions, as_of, q)
+            n_rows += insert_df(con, "out.forecasts", _long(
+                run_id, as_of, model, signal, block.regions,
+                settings.for_signal(signal)["quantiles"], q_out))
+    _publish_scenarios(run, blocks)
+    run.lines.insert(0, f"{n_rows} quantile rows for {', '.join(run.results) or 'no models'}")
+    out: dict[str, Any] = {"line": "; ".join(run.lines), "rows": n_rows}
+    if run.skipped:
+        out["skipped"] = run.skipped
     return out
 
 
-def _renewal_fits(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
-                  block: SeriesBlock, parts: list[slice], res: list) -> None:
-    """One out.fits row per region: where the projected R_t came from."""
+def _run_renewal(run: _Run, signal: str, block: SeriesBlock, y: np.ndarray,
+                 parts: list[slice]) -> None:
+    """Renewal forecasts of one signal: pooled R_t and dispersion over all regions first."""
+    con, cfg = run.con, run.settings.for_signal(signal)
+    seed = int(cfg["seed"])
+    n_draws = int(cfg["forecast_draws"])
+    eventual, rep, start = nowcast_draws_for(con, run.run_id, signal, block, n_draws, seed)
+    values = np.nan_to_num(block.values)
+    pooled_r = _pooled_r(values, eventual, rep, start, cfg, signal)
+    dispersion = run.dispersion[signal]
+    capacity = run.capacity.get(signal, np.full(len(block.regions), np.nan))
+    if not cfg["renewal_depletion"]:
+        capacity = np.full(len(block.regions), np.nan)
+    seeds = series_seeds(seed, signal, block.regions)
+    jobs = [(values[s], eventual[:, s], rep[s], start, cfg, seeds[s], pooled_r,
+             dispersion[s], capacity[s], run.drift[signal]) for s in parts]
+    res = run.mapper(_renewal_job, jobs)
+    _renewal_fits(run, signal, block, parts, res, dispersion, capacity)
+    res = [r if isinstance(r, BatchFailure) else r["q"] for r in res]
+    run.results.setdefault("renewal", {})[signal] = _stack(
+        res, parts, len(block.regions), cfg, run.skipped, "renewal", signal, block.regions)
+
+
+def _pooled_r(values: np.ndarray, eventual: np.ndarray, rep: np.ndarray, start: int,
+              cfg: dict[str, Any], signal: str) -> np.ndarray | None:
+    """Draws of the R_t of all the signal's regions pooled (their summed incidence), for the
+    regions too small for their own; summed in chunks, so memory stays bounded."""
+    total = None
+    for lo in range(0, values.shape[0], 250):
+        s = slice(lo, lo + 250)
+        d, _ = _renewal_draws(values[s], eventual[:, s], rep[s], start, cfg)
+        part = d.sum(axis=1, keepdims=True)
+        total = part if total is None else total + part
+    if total is None:
+        return None
+    pmfs = interval_pmfs(cfg)
+    est = _cori(cfg).fit_draws(total, pmfs if len(pmfs) > 1 else pmfs[0])
+    rnd = SeriesRandom(series_seeds(int(cfg["seed"]), signal, [POOLED]), 1)
+    r = _last_day_r(est, int(cfg["forecast_draws"]), rnd)[:, 0]
+    return r if np.all(np.isfinite(r)) else None
+
+
+def _renewal_fits(run: _Run, signal: str, block: SeriesBlock, parts: list[slice], res: list,
+                  dispersion: np.ndarray, capacity: np.ndarray) -> None:
+    """One out.fits row per region: where the projected R_t came from, and the noise used."""
     rows = []
+    drift = run.drift[signal]
+    msgs = {"own": "R_t of the region itself",
+            "pooled": "too few counts for its own R_t: R_t of the signal's regions pooled",
+            "none": "too few counts, no renewal forecast"}
     for s, r in zip(parts, res, strict=True):
         if isinstance(r, BatchFailure):
             continue
-        for region, src, med in zip(block.regions[s], r["source"], r["r_median"], strict=True):
-            msg = {"own": "R_t of the region itself",
-                   "pooled": "too few counts for its own R_t: R_t of the pooled regions used",
-                   "none": "too few counts, no renewal forecast"}[src]
-            rows.append((region, json.dumps({"r_source": src, "r_median": float(med)}),
-                         src != "none", msg))
+        for j, (region, src, med) in enumerate(zip(block.regions[s], r["source"],
+                                                   r["r_median"], strict=True)):
+            cap = float(capacity[s][j])
+            params = {"r_source": src, "r_median": float(med),
+                      "dispersion": float(dispersion[s][j]), "log_r_drift_sd": drift,
+                      "damping_days": float(run.settings.get("renewal_damping_days", signal)),
+                      "depletion_capacity": cap if np.isfinite(cap) else None}
+            rows.append((region, json.dumps(params), src != "none", msgs[src]))
     if rows:
         df = pd.DataFrame(rows, columns=["region", "params_json", "converged", "message"])
-        df.insert(0, "run_id", run_id)
+        df.insert(0, "run_id", run.run_id)
         df.insert(2, "model", "renewal")
         df["objective"] = np.nan
         df["signal"] = signal
-        insert_df(con, "out.fits", df)
+        insert_df(run.con, "out.fits", df)
 
 
-def _stack(res: list, parts: list[slice], block: SeriesBlock, cfg: dict, skipped: list[str],
-           model: str, signal: str) -> np.ndarray:
-    """Join batch results; failed batches become NaN and are recorded as skipped."""
-    h, k = int(cfg["horizon_days"]), len(cfg["quantiles"])
-    out = np.full((len(block.regions), h, k), np.nan)
-    for s, r in zip(parts, res, strict=True):
-        if isinstance(r, BatchFailure):
-            skipped.extend(f"{model}/{signal}/{x}: {r.message[:200]}" for x in block.regions[s])
-        else:
-            out[s] = r
-    return out
-
-
-def _run_compartmental(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings,
-                       run_id: str, blocks: dict[str, SeriesBlock],
-                       corrected: dict[str, tuple], results: dict, mapper: Mapper,
-                       skipped: list[str], lines: list[str]) -> None:
-    """Joint fit per region over the signals the model knows; fail soft per region."""
+def _run_compartmental(run: _Run, blocks: dict[str, SeriesBlock],
+                       corrected: dict[str, tuple], publish: bool) -> None:
+    """Joint fit per region over the signals the model knows; fail soft per region.  Also the
+    scenarios and the susceptible pool the renewal projection depletes."""
+    con, settings = run.con, run.settings
     sigs = [s for s in COMPARTMENTAL_SIGNALS if s in blocks]
     if not sigs:
-        lines.append("compartmental: no cases/admissions/deaths signal")
+        run.lines.append("compartmental: no cases/admissions/deaths signal")
         return
     cfg = settings.for_signal(sigs[0])
     regions = np.unique(np.concatenate([blocks[s].regions for s in sigs]))
     n_days = int(cfg["fit_window_weeks"]) * 7 + COMPARTMENTAL_BURN_IN_DAYS
+    first_day = run.as_of - dt.timedelta(days=n_days - 1)
     series: dict[str, np.ndarray] = {}
+    prior: dict[str, np.ndarray] = {}
+    noise: dict[str, np.ndarray] = {}
     for s in sigs:
-        block, nq = corrected[s]
-        y = median_corrected(np.nan_to_num(block.values), *nq)
+        block = blocks[s]
+        y = corrected[s][0]
         arr = np.full((len(regions), n_days), np.nan)
         pos = np.searchsorted(regions, block.regions)
         take = y[:, -n_days:]
         arr[pos, n_days - take.shape[1]:] = take
         series[s] = arr
+        noise[s] = np.full(len(regions), np.nan)
+        noise[s][pos] = run.dispersion[s]
+        prior[s] = _history_totals(con, run.run_id, first_day, s, regions)
     pop, pop_missing = _populations(con, regions)
-    init = _previous_params(con, as_of, regions)
+    imm_regions = dict(cfg["immune_fraction_regions"])
+    immune = np.array([imm_regions.get(r, float(cfg["immune_fraction"])) for r in regions])
+    init = _previous_params(con, run.as_of, regions)
     parts = batches(len(regions), int(cfg["batch_regions"]))
-    jobs = [({s: series[s][p] for s in sigs}, pop[p], _init_batch(init[p]), cfg,
-             int(cfg["seed"]) + i) for i, p in enumerate(parts)]
-    res = mapper(_compartmental_job, jobs)
-    fits = []
+    seeds = series_seeds(int(cfg["seed"]), "compartmental", regions)
+    scen = multipliers(list(cfg["scenarios"]), run.as_of, regions, int(cfg["horizon_days"])) \
+        if publish else []
+    jobs = [({s: series[s][p] for s in sigs}, pop[p], _init_batch(init[p]),
+             {s: prior[s][p] for s in sigs}, immune[p], cfg, seeds[p], run.drift[sigs[0]],
+             [(name, m[p]) for name, m in scen], {s: noise[s][p] for s in sigs})
+            for p in parts]
+    res = run.mapper(_compartmental_job, jobs)
     h, k = int(cfg["horizon_days"]), len(cfg["quantiles"])
     per_signal = {s: np.full((len(regions), h, k), np.nan) for s in sigs}
-    n_conv = 0
+    per_scen = {name: {s: np.full((len(regions), h, k), np.nan) for s in sigs}
+                for name, _ in scen}
+    capacity = {s: np.full(len(regions), np.nan) for s in sigs}
+    fits, n_conv = [], 0
     for p, r in zip(parts, res, strict=True):
         regs = regions[p]
         if isinstance(r, BatchFailure):
-            skipped.extend(f"compartmental/{x}: {r.message[:200]}" for x in regs)
+            run.skipped.extend(f"compartmental/{x}: {r.message[:200]}" for x in regs)
             fits.append(pd.DataFrame({"region": regs, "params_json": None,
                                       "objective": np.nan, "converged": False,
                                       "message": f"batch failed: {r.message[:300]}"}))
             continue
+        conv = np.asarray(r["converged"], dtype=bool)
         for s in sigs:
             per_signal[s][p] = r["q"][s]
-        conv = np.asarray(r["converged"], dtype=bool)
+            capacity[s][p] = np.where(conv, r["capacity"][s], np.nan)
+            for name in per_scen:
+                per_scen[name][s][p] = r["scenarios"][name][s]
         n_conv += int(conv.sum())
         msgs = [m + ("; population unknown, 1,000,000 assumed" if pm else "")
                 for m, pm in zip(r["message"], pop_missing[p], strict=True)]
@@ -319,17 +486,77 @@ def _run_compartmental(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings:
             "region": regs, "params_json": [json.dumps(x) for x in _per_region(r["params"],
                                                                                 len(regs))],
             "objective": r["objective"], "converged": conv, "message": msgs}))
+    for s in sigs:
+        pos = np.searchsorted(regions, blocks[s].regions)
+        run.capacity[s] = capacity[s][pos]
+        if publish:
+            run.results.setdefault("compartmental", {})[s] = per_signal[s][pos]
+            for name in per_scen:
+                run.scenarios.setdefault(name, {})[s] = per_scen[name][s][pos]
+    if not publish:
+        return
     if fits:
         f = pd.concat(fits, ignore_index=True)
-        f.insert(0, "run_id", run_id)
+        f.insert(0, "run_id", run.run_id)
         f.insert(2, "model", "compartmental")
         f["signal"] = None
         insert_df(con, "out.fits", f)
-    for s in sigs:
-        block = blocks[s]
-        pos = np.searchsorted(regions, block.regions)
-        results.setdefault("compartmental", {})[s] = per_signal[s][pos]
-    lines.append(f"compartmental: {n_conv}/{len(regions)} regions converged")
+    run.lines.append(f"compartmental: {n_conv}/{len(regions)} regions converged")
+
+
+def _ensembles(run: _Run, blocks: dict[str, SeriesBlock], wanted: list[str]) -> None:
+    """The plain ensemble and the scoreboard-weighted one, from the members (never the
+    baseline); weights published in out.ensemble_weights."""
+    members = {s: [m for m in MEMBERS if s in run.results.get(m, {})] for s in blocks}
+    if "ensemble" in wanted:
+        for signal, mem in members.items():
+            if mem:
+                how = run.settings.get("ensemble_method", signal)
+                run.results.setdefault("ensemble", {})[signal] = quantile_ensemble(
+                    [run.results[m][signal] for m in mem], method=how)
+    if "ensemble_weighted" not in wanted or not any(members.values()):
+        return
+    table = scoreboard_weights(run.con, run.as_of, run.settings, members)
+    for signal, mem in members.items():
+        if not mem:
+            continue
+        stack = [run.results[m][signal] for m in mem]
+        h = stack[0].shape[1]
+        w = weight_array(table, signal, mem, h)
+        out = np.empty_like(stack[0])
+        for day in range(h):
+            out[:, day:day + 1] = quantile_ensemble([a[:, day:day + 1] for a in stack],
+                                                    method="mean", weights=w[day])
+        run.results.setdefault("ensemble_weighted", {})[signal] = out
+    if len(table):
+        table = table.copy()
+        table.insert(0, "run_id", run.run_id)
+        table.insert(1, "issued_on", np.datetime64(run.as_of, "D"))
+        insert_df(run.con, "out.ensemble_weights", table)
+        basis = table.groupby("signal")["basis"].apply(
+            lambda b: "scores" if b.str.startswith("inverse").any() else "equal").to_dict()
+        run.lines.append("ensemble weights: " + ", ".join(f"{s} {v}" for s, v in basis.items()))
+
+
+def _publish_scenarios(run: _Run, blocks: dict[str, SeriesBlock]) -> None:
+    """Scenario projections in report units → out.scenarios."""
+    if not run.scenarios:
+        return
+    frames = []
+    for sc in run.settings.get("scenarios"):
+        name = str(sc["name"])
+        for signal, q in run.scenarios.get(name, {}).items():
+            block = blocks[signal]
+            cfg = run.settings.for_signal(signal)
+            change = multipliers([sc], run.as_of, block.regions, q.shape[1])[0][1]
+            q_out = _to_report_units(run.con, run.run_id, signal, block.regions, run.as_of, q)
+            keep = np.ones(len(block.regions), dtype=bool) if "regions" not in sc else \
+                np.isin(block.regions.astype(object), list(sc["regions"]))  # its regions only
+            frames.append(scenario_frame(run.run_id, run.as_of, name, describe(sc, run.as_of),
+                                         signal, block.regions[keep], cfg["quantiles"],
+                                         q_out[keep], change[keep]))
+    n = write_scenarios(run.con, frames)
+    run.lines.append(f"{len(run.scenarios)} scenario(s): {n} rows")
 
 
 def _init_batch(init: list[dict | None]) -> list[dict | None] | None:

@@ -36,6 +36,8 @@ NATURAL_KEYS: dict[str, tuple[str, ...]] = {
     "out.fits": ("run_id", "region", "model", "signal"),
     "out.forecasts": ("run_id", "model", "region", "signal", "target_date", "q_level"),
     "out.scores": ("issued_on", "model", "region", "signal", "target_date"),
+    "out.ensemble_weights": ("run_id", "signal", "horizon_from", "model"),
+    "out.scenarios": ("run_id", "scenario", "region", "signal", "target_date", "q_level"),
 }
 
 #: The tables a stage writes under its run_id (cleared before it writes again).

@@ -30,6 +30,7 @@ from matplotlib.figure import Figure
 
 from tallywave.pipeline.errors import UserError
 from tallywave.pipeline.report_delay import delay_alerts_html
+from tallywave.pipeline.report_forecast import draw_scenarios, forecast_sections, scenario_series
 
 #: Days of history shown in the reported/nowcast and R_t panels.
 WINDOW_DAYS = 60
@@ -233,7 +234,8 @@ def _figure_data(con: duckdb.DuckDBPyConnection, run_id: str, as_of: dt.date,
     fc = _df(con, "SELECT model, region, signal, target_date, q_level, value FROM out.forecasts "
                   "WHERE run_id = ? AND list_contains(?::VARCHAR[], region)", [run_id, regions])
     return {"cleaned": _by_series(cleaned), "nowcast": _by_series(nowcast),
-            "rt": _by_series(rt), "forecasts": _by_series(fc)}
+            "rt": _by_series(rt), "forecasts": _by_series(fc),
+            "scenarios": scenario_series(con, run_id, regions)}
 
 
 def _clean_actions(con: duckdb.DuckDBPyConnection, run_id: str
@@ -446,6 +448,7 @@ def _draw_series(fig: Figure, canvas: FigureCanvasAgg, path: Path, signal: str, 
     _panel_counts(axes[0], data["cleaned"], data["nowcast"], as_of, signal)
     _panel_rt(axes[1], data["rt"])
     _panel_forecast(axes[2], data["forecasts"], data["cleaned"], as_of)
+    draw_scenarios(axes[2], data.get("scenarios"))
     fig.subplots_adjust(left=0.045, right=0.99, bottom=0.13, top=0.88, wspace=0.18)
     canvas.print_png(str(path))
 
@@ -733,6 +736,7 @@ dotted line is the as-of date.</p>
 {"".join(fig_html)}</section>
 <section class="block" id="accuracy"><h2>Forecast accuracy</h2>
 {_accuracy_html(acc)}</section>
+{forecast_sections(con, run_id)}
 </main>
 <footer id="cautions"><h2>Cautions</h2>{_CAUTION}
 <p class="note">Generated from run {_e(run_id)} of Tallywave {_e(run["code_version"] or "")}.

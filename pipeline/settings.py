@@ -108,14 +108,52 @@ SPEC: dict[str, Setting] = {
     "horizon_days": Setting(28, "forecast horizon"),
     "quantiles": Setting([0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975],
                          "forecast quantile levels (median + symmetric pairs)"),
-    "models": Setting(["baseline", "renewal", "compartmental", "ensemble"], "models to run",
-                      ("baseline", "renewal", "compartmental", "ensemble")),
+    "models": Setting(["baseline", "renewal", "compartmental", "ensemble", "ensemble_weighted"],
+                      "models to run (`baseline` is the yardstick, never an ensemble member)",
+                      ("baseline", "renewal", "compartmental", "ensemble", "ensemble_weighted")),
     "forecast_draws": Setting(400, "Monte Carlo draws per forecast"),
+    "baseline_scale": Setting("relative", "baseline spread from past h-day changes as log "
+                              "ratios (`relative`) or differences (`absolute`)",
+                              ("relative", "absolute")),
+    "drift_sd": Setting(0.05, "random-walk sd of log transmission per day beyond the data: the "
+                        "ceiling of the estimate (and its value when R_t history is too short)"),
+    "drift_from_rt": Setting(True, "estimate that drift from the run's R_t history, pooled over "
+                             "the signal's regions"),
+    "renewal_damping_days": Setting(14.0, "renewal projection: half-life of log R_t toward 0 "
+                                    "(R toward 1) beyond the data; 0 = no damping"),
+    "renewal_depletion": Setting(True, "renewal projection: deplete susceptibles, with the pool "
+                                 "and the signal's reporting fraction from the compartmental fit"),
     "latent_days": Setting(3.0, "compartmental model: mean latent period (days)"),
     "infectious_days": Setting(5.0, "compartmental model: mean infectious period (days)"),
-    "drift_sd": Setting(0.05, "random-walk sd of log transmission per day beyond the data"),
-    "ensemble_method": Setting("median", "how quantiles are combined across models",
-                               ("median", "mean")),
+    "compartmental_delays": Setting(
+        {"cases": [3.0, 2.1], "admissions": [7.5, 3.3], "deaths": [18.5, 7.3]},
+        "compartmental model: infection to reference date, gamma `[mean, sd]` days per signal"),
+    "compartmental_fractions": Setting(
+        {"cases": 0.3, "admissions": 0.02, "deaths": 0.005},
+        "compartmental model: share of infections counted by each signal (prior mean)"),
+    "fraction_prior_sd": Setting(
+        {"cases": 1.0, "admissions": 1.0, "deaths": 0.5},
+        "compartmental model: prior sd of each fraction on the log scale (0 = known, fixed)"),
+    "fraction_drift_sd": Setting(0.2, "compartmental model: sd of a fraction's log change "
+                                 "per 4 weeks (0 = constant fractions)"),
+    "ode_method": Setting("rk4", "compartmental model stepping", ("rk4", "euler")),
+    "ode_steps_per_day": Setting(1, "compartmental model: steps per day"),
+    "immune_fraction": Setting(0.0, "share of every region's population immune before the "
+                               "fitted history (earlier waves, vaccination)"),
+    "immune_fraction_regions": Setting({}, "per-region immune share, `{region = share}`, "
+                                       "overriding `immune_fraction`"),
+    "ensemble_method": Setting("median", "how the plain ensemble combines its members' "
+                               "quantiles", ("median", "mean")),
+    "ensemble_window_days": Setting(42, "weighted ensemble: forecasts issued this many days "
+                                    "back whose truth had settled feed the weights"),
+    "ensemble_band_days": Setting(7, "weighted ensemble: horizons share weights in bands of "
+                                  "this many days"),
+    "ensemble_min_scores": Setting(30, "weighted ensemble: common scored forecasts a band needs "
+                                   "before its weights leave equal"),
+    "ensemble_weight_power": Setting(1.0, "weighted ensemble: weight = (mean WIS)^-power"),
+    "scenarios": Setting([], "what-if projections: list of `{name, change, start, regions}` "
+                         "(transmission × `change` from date `start`, or `after_days` from "
+                         "the run date; `regions` optional); published in `out.scenarios`"),
     # ---- scoring ----
     "settle_days": Setting(14, "truth counts as settled this many days after the target date "
                            "(with `settle_rule = \"delay\"` the least: a signal whose 99th "
@@ -199,10 +237,101 @@ def _check_delay(value: Any, where: str, nested: bool = True) -> dict:
     return value
 
 
+_SIGNALS3 = ("cases", "admissions", "deaths")
+
+
+def _number(value: Any) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool)
+
+
+def _check_per_signal(key: str, value: Any, where: str) -> dict[str, Any]:
+    """The compartmental model's per-signal tables: known signals, sensible numbers."""
+    if not isinstance(value, dict):
+        raise UserError(f"{where}: {key} must be a table {{cases = .., admissions = .., "
+                        "deaths = ..}}")
+    out = copy.deepcopy(DEFAULTS[key])
+    for sig, v in value.items():
+        if sig not in _SIGNALS3:
+            raise UserError(f"{where}: {key} has {sig!r}, which is not one of "
+                            f"{', '.join(_SIGNALS3)}")
+        if key == "compartmental_delays":
+            ok = isinstance(v, list) and len(v) == 2 and all(_number(x) and x > 0 for x in v)
+            need = "[mean, sd] in days, both > 0"
+        elif key == "compartmental_fractions":
+            ok = _number(v) and 0 < v < 1
+            need = "a share between 0 and 1"
+        else:
+            ok = _number(v) and v >= 0
+            need = "a number >= 0"
+        if not ok:
+            raise UserError(f"{where}: {key}.{sig} = {v!r} must be {need}")
+        out[sig] = [float(x) for x in v] if isinstance(v, list) else float(v)
+    return out
+
+
+def _check_scenarios(value: Any, where: str) -> list[dict[str, Any]]:
+    """Scenario list: unique names, change > 0, a start date or days after the run date."""
+    import datetime as dt
+
+    if not isinstance(value, list):
+        raise UserError(f"{where}: scenarios must be a list of tables")
+    out: list[dict[str, Any]] = []
+    names: set[str] = set()
+    for i, sc in enumerate(value):
+        at = f"{where}: scenarios[{i}]"
+        if not isinstance(sc, dict):
+            raise UserError(f"{at} must be a table {{name, change, start, regions}}")
+        extra = set(sc) - {"name", "change", "start", "after_days", "regions"}
+        if extra:
+            raise UserError(f"{at}: unknown key {min(extra)!r} (allowed: name, change, start, "
+                            "after_days, regions)")
+        name = sc.get("name")
+        if not isinstance(name, str) or not name.strip() or name in names:
+            raise UserError(f"{at}: name must be a non-empty text, different for each scenario")
+        names.add(name)
+        change = sc.get("change")
+        if not isinstance(change, (int, float)) or isinstance(change, bool) or not change > 0:
+            raise UserError(f"{at}: change must be a number > 0 (0.8 = transmission -20 %), "
+                            f"got {change!r}")
+        item: dict[str, Any] = {"name": name, "change": float(change)}
+        if ("start" in sc) == ("after_days" in sc):
+            raise UserError(f"{at}: give exactly one of start (a date) or after_days")
+        if "start" in sc:
+            start = sc["start"]
+            try:
+                item["start"] = (start if isinstance(start, dt.date)
+                                 else dt.date.fromisoformat(str(start))).isoformat()
+            except ValueError:
+                raise UserError(f"{at}: start {start!r} is not a date (YYYY-MM-DD)") from None
+        else:
+            days = sc["after_days"]
+            if not isinstance(days, int) or isinstance(days, bool) or days < 0:
+                raise UserError(f"{at}: after_days must be a whole number >= 0, got {days!r}")
+            item["after_days"] = days
+        if "regions" in sc:
+            regs = sc["regions"]
+            if not isinstance(regs, list) or not regs or not all(isinstance(r, str)
+                                                                 for r in regs):
+                raise UserError(f"{at}: regions must be a non-empty list of region names")
+            item["regions"] = list(regs)
+        out.append(item)
+    return out
+
+
 def _check_value(key: str, value: Any, where: str) -> Any:
     default = DEFAULTS[key]
     if key == "infection_delay":
         return _check_delay(value, where)
+    if key in ("compartmental_delays", "compartmental_fractions", "fraction_prior_sd"):
+        return _check_per_signal(key, value, where)
+    if key == "scenarios":
+        return _check_scenarios(value, where)
+    if key == "immune_fraction_regions":
+        if not isinstance(value, dict) or not all(_number(v) and 0 <= v <= 1
+                                                  for v in value.values()):
+            raise UserError(f"{where}: immune_fraction_regions must be a table "
+                            "{region = share between 0 and 1}")
+        return {str(k): float(v) for k, v in value.items()}
     if key == "generation_interval":
         if not isinstance(value, dict) or not (
             {"mean", "sd"} <= set(value) or "pmf" in value or "candidates" in value
@@ -223,6 +352,9 @@ def _check_value(key: str, value: Any, where: str) -> Any:
             raise UserError(f"{where}: {key} must be a number, got {value!r}")
         if value < 0:
             raise UserError(f"{where}: {key} must not be negative, got {value!r}")
+        if key == "immune_fraction" and value > 1:
+            raise UserError(f"{where}: immune_fraction must be a share between 0 and 1, "
+                            f"got {value!r}")
         return type(default)(value) if isinstance(default, int) and float(value).is_integer() \
             else value
     choices = SPEC[key].choices
@@ -292,6 +424,13 @@ def load_settings(path: str | Path | None = None) -> Settings:
             if key not in _SIGNAL_KEYS:
                 raise UserError(f"{p}: unknown setting signal.{sig}.{key}")
             s.per_signal.setdefault(sig, {})[key] = _check_value(key, value, f"{p}: signal.{sig}")
+    for sig in ["", *s.per_signal]:
+        models = s.get("models", sig or None)
+        if {"ensemble", "ensemble_weighted"} & set(models) and \
+                not {"renewal", "compartmental"} & set(models):
+            where = f"signal.{sig}.models" if sig else "models"
+            raise UserError(f"{p}: {where} asks for an ensemble but names none of its members "
+                            "(renewal, compartmental); the baseline is the yardstick, not a member")
     s.source = str(p)
     return s
 
@@ -303,6 +442,8 @@ def _cell(value: Any) -> str:
         return f'`"{value}"`'
     if isinstance(value, dict):
         return "`" + _toml_inline(value) + "`"
+    if isinstance(value, list) and not value:
+        return "none"
     if isinstance(value, list):
         if all(isinstance(v, float) for v in value) and len(value) > 4:
             return f"{value[0]:g} … {value[-1]:g} ({len(value)} levels)"

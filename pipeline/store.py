@@ -157,8 +157,23 @@ _V4 = [
     "ALTER TABLE out.scores ADD COLUMN IF NOT EXISTS cover_frac_90 DOUBLE",
 ]
 
+#: Version 5: the weighted ensemble's scoreboard weights and the scenario projections.
+_V5 = [
+    """CREATE TABLE IF NOT EXISTS out.ensemble_weights (
+        run_id VARCHAR NOT NULL, issued_on DATE NOT NULL, signal VARCHAR NOT NULL,
+        horizon_from INTEGER NOT NULL, horizon_to INTEGER NOT NULL, model VARCHAR NOT NULL,
+        weight DOUBLE NOT NULL, mean_wis DOUBLE, n_scores INTEGER, basis VARCHAR,
+        PRIMARY KEY (run_id, signal, horizon_from, model))""",
+    """CREATE TABLE IF NOT EXISTS out.scenarios (
+        run_id VARCHAR NOT NULL, issued_on DATE NOT NULL, scenario VARCHAR NOT NULL,
+        description VARCHAR, region VARCHAR NOT NULL, signal VARCHAR NOT NULL,
+        target_date DATE NOT NULL, horizon_days INTEGER NOT NULL, transmission_change DOUBLE,
+        q_level DOUBLE NOT NULL, value DOUBLE NOT NULL,
+        PRIMARY KEY (run_id, scenario, region, signal, target_date, q_level))""",
+]
+
 #: Forward migrations: (version, statements).  Append new steps; never edit a shipped one.
-MIGRATIONS: list[tuple[int, list[str]]] = [(1, _V1), (2, _V2), (3, _V3), (4, _V4)]
+MIGRATIONS: list[tuple[int, list[str]]] = [(1, _V1), (2, _V2), (3, _V3), (4, _V4), (5, _V5)]
 SCHEMA_VERSION = MIGRATIONS[-1][0]
 
 

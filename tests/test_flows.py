@@ -59,7 +59,7 @@ def test_daily_flow_publishes_run_and_report(prefect_server, small_db, tmp_path)
                                         "WHERE run_id = ?", [out["run_id"]]).fetchall()}
     con.close()
     assert len(pairs) == 4 * 3
-    assert models == {"baseline", "renewal", "compartmental", "ensemble"}
+    assert models == {"baseline", "renewal", "compartmental", "ensemble", "ensemble_weighted"}
     index = Path(out["report"])
     html = index.read_text(encoding="utf-8")
     pngs = sorted((index.parent / "figures").glob("*.png"))

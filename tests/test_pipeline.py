@@ -41,7 +41,7 @@ BACKFILL_DAYS = (141, 146, 151, 155, 159)  # run after every snapshot is ingeste
 NOWCAST_DAYS = (140, 146, 151, 155, 159)  # as_of dates whose nowcasts are checked against truth
 LAST_DAY = N_DAYS - 1
 LEVELS = [0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975]
-MODELS = ["baseline", "compartmental", "ensemble", "renewal"]
+MODELS = ["baseline", "compartmental", "ensemble", "ensemble_weighted", "renewal"]
 SIGNALS = ["admissions", "cases", "deaths"]
 # Reference dates this close to an injected artefact are left out of truth comparisons: the
 # backlog dump holds back the 9 days before it, the duplicate correction the 14 days before it,

@@ -19,7 +19,6 @@ from tallywave.models.renewal import (
     resolve_interval,
     total_infectiousness,
 )
-from tallywave.models.renewal_forecast import RenewalForecaster
 
 Q90 = [0.05, 0.95]
 
@@ -356,62 +355,6 @@ def test_matched_gamma_moments_and_mixture_accuracy() -> None:
     assert err.max() < 0.02, err.max()  # measured 0.017 (worst at sd 0.3, 2.5% level)
     # in value: measured 6.7% at the 2.5% level where the draws spread the mean by 30%
     assert np.abs(fast / exact - 1.0).max() < 0.08
-
-
-# ---------------------------------------------------------------------------------------------
-# Renewal projection
-# ---------------------------------------------------------------------------------------------
-
-
-def test_forecast_flat_at_r_one_with_negative_binomial_noise() -> None:
-    pmf = discretise_gamma_interval(5.0, 2.5)
-    hist = np.full((3, 40), 200.0)
-    fc = RenewalForecaster(horizon=21, dispersion=10.0, seed=4)
-    fc.fit(hist, pmf, np.ones((4000, 3)))
-    y = fc.sample()
-    assert y.shape == (4000, 3, 21)
-    np.testing.assert_allclose(fc.expected_, 200.0, rtol=1e-12)
-    np.testing.assert_allclose(y.mean(axis=0), 200.0, rtol=0.02)
-    # NB variance mu + mu^2/k (numpy negative_binomial(n=k, p=k/(k+mu)); common practice)
-    assert y.var(axis=0).mean() == pytest.approx(200 + 200**2 / 10, rel=0.05)
-    q = fc.quantiles([0.05, 0.25, 0.5, 0.75, 0.95])
-    assert q.shape == (3, 21, 5) and np.all(q >= 0) and np.all(np.diff(q, axis=-1) >= 0)
-    assert np.all(np.abs(q[..., 2] - 200) <= 10)
-
-
-def test_forecast_grows_at_wallinga_lipsitch_rate() -> None:
-    pmf = discretise_gamma_interval(5.0, 2.5)
-    r = 0.05
-    big_r = reproduction_number_from_growth(r, pmf)
-    # exponential history + matching R: the renewal equation continues e^{rt} exactly
-    # (Wallinga & Lipsitch 2007, discrete form)
-    hist = 100.0 * np.exp(r * np.arange(50))[None, :]
-    fc = RenewalForecaster(horizon=14, seed=1).fit(hist, pmf, np.full((200, 1), big_r))
-    y = fc.sample()
-    np.testing.assert_allclose(fc.expected_[0, 0], hist[0, -1] * np.exp(r * np.arange(1, 15)),
-                               rtol=1e-10)
-    assert y.mean(axis=0)[0, -1] == pytest.approx(hist[0, -1] * np.exp(r * 14), rel=0.02)
-    # flat history: after the transient the growth rate converges to the W-L rate for R
-    fc2 = RenewalForecaster(horizon=60).fit(np.full((1, 30), 100.0), pmf, [[1.5]])
-    fc2.sample(seed=0)
-    mu = fc2.expected_[0, 0]
-    slope = np.log(mu[-1] / mu[-8]) / 7
-    assert slope == pytest.approx(float(growth_rate_from_r(1.5, pmf)), rel=0.01)
-
-
-def test_forecast_drift_on_log_r_widens_intervals() -> None:
-    pmf = discretise_gamma_interval(5.0, 2.5)
-    hist = np.full((2, 30), 300.0)
-    r0 = np.ones((3000, 2))
-    q_fixed = RenewalForecaster(horizon=28, seed=3).fit(hist, pmf, r0).quantiles(Q90)
-    q_drift = RenewalForecaster(horizon=28, log_r_sd=0.05, seed=3).fit(hist, pmf, r0).quantiles(
-        Q90
-    )
-    w_fixed = q_fixed[..., 1] - q_fixed[..., 0]
-    w_drift = q_drift[..., 1] - q_drift[..., 0]
-    assert np.all(w_drift[:, -1] > 2 * w_fixed[:, -1])
-    assert np.all(w_drift[:, -1] > w_drift[:, 6])  # uncertainty grows with horizon
-    assert np.all(q_drift >= 0)
 
 
 def test_shapes_and_input_validation() -> None:

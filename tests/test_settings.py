@@ -56,7 +56,15 @@ def test_every_choice_setting_accepts_each_of_its_choices(tmp_path: Path) -> Non
         if not spec.choices:
             continue
         for choice in spec.choices:
-            value = f'["{choice}"]' if isinstance(spec.default, list) else f'"{choice}"'
+            # an ensemble needs a member beside it (tested below)
+            items = [choice, "renewal"] if choice.startswith("ensemble") else [choice]
+            value = (("[" + ", ".join(f'"{c}"' for c in items) + "]")
+                     if isinstance(spec.default, list) else f'"{choice}"')
             s = _load(tmp_path, f"[signal.deaths]\n{key} = {value}\n")
             got = s.get(key, "deaths")
-            assert got == ([choice] if isinstance(spec.default, list) else choice)
+            assert got == (items if isinstance(spec.default, list) else choice)
+
+
+def test_an_ensemble_without_members_is_refused(tmp_path: Path) -> None:
+    with pytest.raises(UserError, match="ensemble but names none of its members"):
+        _load(tmp_path, '[defaults]\nmodels = ["baseline", "ensemble"]\n')
