@@ -68,7 +68,7 @@ def weekly_known(tri: np.ndarray, as_of_day: int) -> np.ndarray:
 
 def write_weekly_feed(out: Path, *, n_regions: int = 12, scenario: str = "default",
                       signals: tuple[str, ...] = ("cases", "admissions"), n_days: int = N_DAYS,
-                      first_week: int = 14, window_weeks: int = 20, seed: int = 20260302,
+                      first_week: int = 8, window_weeks: int = 20, seed: int = 20260302,
                       kind: str = "daily") -> WeeklyWorld:
     """Simulate, then write one CSV per weekly snapshot (``region,week,n``; as_of in the file
     name) from week ``first_week`` on, a weekly feed spec and a regions file.  ``kind``:
@@ -176,7 +176,7 @@ def evaluate(con: Any, world: WeeklyWorld, run_ids: dict[dt.date, str],
                WHERE NOT o.nowcast_dependent AND o.signal = 'cases' AND t.infections >= 50
                GROUP BY ALL""").df()
         fc = con.execute(
-            """SELECT f.model, f.horizon_days, f.region, f.signal, f.target_date, t.truth,
+            """SELECT f.run_id, f.model, f.horizon_days, f.region, f.signal, f.target_date, t.truth,
                       max(f.value) FILTER (WHERE abs(f.q_level - 0.05) < 1e-9) AS q05,
                       max(f.value) FILTER (WHERE abs(f.q_level - 0.5) < 1e-9) AS q50,
                       max(f.value) FILTER (WHERE abs(f.q_level - 0.95) < 1e-9) AS q95,
@@ -184,7 +184,7 @@ def evaluate(con: Any, world: WeeklyWorld, run_ids: dict[dt.date, str],
                               * (f.value - t.truth)) AS wis
                FROM out.forecasts f JOIN _wk_runs r USING (run_id)
                JOIN _wk_final t ON t.region = f.region AND t.signal = f.signal
-                    AND t.target_date = f.target_date
+                    AND t.ref_date = f.target_date
                GROUP BY ALL""").df() if _has_forecasts(con, runs) else pd.DataFrame()
     finally:
         for name in ("_wk_runs", "_wk_final", "_wk_rt"):
@@ -206,6 +206,8 @@ def evaluate(con: Any, world: WeeklyWorld, run_ids: dict[dt.date, str],
             cov = ((g["q05"] <= g["truth"]) & (g["truth"] <= g["q95"])).mean()
             out[f"fc_{model}_h{h}_cov90"] = float(cov)
             out[f"fc_{model}_h{h}_wis"] = float(g["wis"].mean())
+            out[f"fc_{model}_h{h}_log_bias"] = float(np.median(
+                np.log((g["q50"] + 1) / (g["truth"] + 1))))
         out["fc_n"] = len(fc)
     return out
 
@@ -244,6 +246,27 @@ def main(argv: list[str] | None = None) -> None:  # pragma: no cover - prints RE
         rows.append({"scenario": name, **got, "seconds": round(time.perf_counter() - t0, 1)})
     df = pd.DataFrame(rows).set_index("scenario").T
     print(df.to_string(float_format=lambda v: f"{v:.3f}"))
+    print(forecast_table(rows))
+
+
+def forecast_table(rows: list[dict[str, Any]]) -> str:
+    """Markdown: per model x horizon, WIS relative to the baseline's (same forecasts) / 90 %
+    coverage / median log bias, pooled over the scenarios (mean of their ratios)."""
+    models = sorted({k.split("_h")[0][3:] for r in rows for k in r if k.startswith("fc_")
+                     and "_h" in k})
+    horizons = [7, 14, 21, 28]
+    lines = ["| model | " + " | ".join(f"{h // 7} week(s): rel WIS / cov90 / log bias"
+                                        for h in horizons) + " |",
+             "|---|" + "---|" * len(horizons)]
+    for m in models:
+        cells = []
+        for h in horizons:
+            rel = np.mean([r[f"fc_{m}_h{h}_wis"] / r[f"fc_baseline_h{h}_wis"] for r in rows])
+            cov = np.mean([r[f"fc_{m}_h{h}_cov90"] for r in rows])
+            bias = np.mean([r[f"fc_{m}_h{h}_log_bias"] for r in rows])
+            cells.append(f"{rel:.2f} / {cov:.2f} / {bias:+.2f}")
+        lines.append(f"| {m} | " + " | ".join(cells) + " |")
+    return "\n".join(lines)
 
 
 if __name__ == "__main__":  # pragma: no cover
