@@ -69,10 +69,13 @@ def weekly_known(tri: np.ndarray, as_of_day: int) -> np.ndarray:
 def write_weekly_feed(out: Path, *, n_regions: int = 12, scenario: str = "default",
                       signals: tuple[str, ...] = ("cases", "admissions"), n_days: int = N_DAYS,
                       first_week: int = 8, window_weeks: int = 20, seed: int = 20260302,
-                      kind: str = "daily") -> WeeklyWorld:
+                      kind: str = "daily", rename: dict[str, str] | None = None,
+                      regions_file: bool = True) -> WeeklyWorld:
     """Simulate, then write one CSV per weekly snapshot (``region,week,n``; as_of in the file
     name) from week ``first_week`` on, a weekly feed spec and a regions file.  ``kind``:
-    ``daily`` (weekly counts) or ``cumulative`` (running totals of the weekly counts)."""
+    ``daily`` (weekly counts) or ``cumulative`` (running totals of the weekly counts);
+    ``rename`` publishes a simulated signal under another name (e.g. beside the daily demo feed
+    of the same outbreak, ``pipeline.simulate.write_scenario`` with the same seed)."""
     rep = reporting_scenario(scenario, n_days, START.weekday())
     sc = simulate_outbreak(n_regions=n_regions, n_days=n_days, n_snapshots=n_days - 60,
                            window=35, seed=seed, first_weekday=START.weekday(), reporting=rep)
@@ -81,8 +84,9 @@ def write_weekly_feed(out: Path, *, n_regions: int = 12, scenario: str = "defaul
     spec = []
     as_of: list[dt.date] = []
     finals = []
-    for signal in signals:
-        tri = sc.triangles[signal]
+    for sim_signal in signals:
+        tri = sc.triangles[sim_signal]
+        signal = (rename or {}).get(sim_signal, sim_signal)
         (out / signal).mkdir(exist_ok=True)
         for f in (out / signal).glob("*.csv"):
             f.unlink()
@@ -96,7 +100,7 @@ def write_weekly_feed(out: Path, *, n_regions: int = 12, scenario: str = "defaul
             if kind == "cumulative":
                 vals = np.cumsum(vals, axis=1)
             d = START + dt.timedelta(days=day)
-            if signal == signals[0]:
+            if sim_signal == signals[0]:
                 as_of.append(d)
             lines = ["region,week,n"] + [
                 f"{names[r]},{week_date(w).isoformat()},{int(vals[r, w])}"
@@ -119,11 +123,12 @@ def write_weekly_feed(out: Path, *, n_regions: int = 12, scenario: str = "defaul
             "region": np.repeat(names, n_weeks), "signal": signal,
             "ref_date": np.tile([week_date(w) for w in range(n_weeks)], n_regions),
             "truth": wk.ravel().astype(float)}))
-    spec.append(textwrap.dedent("""\
-        [regions]
-        path = "regions.csv"
-        columns = { region = "region", population = "population" }
-        """))
+    if regions_file:
+        spec.append(textwrap.dedent("""\
+            [regions]
+            path = "regions.csv"
+            columns = { region = "region", population = "population" }
+            """))
     (out / "regions.csv").write_text("region,population\n" + "".join(
         f"{n},{int(p)}\n" for n, p in zip(names, sc.populations, strict=True)))
     path = out / "feeds.toml"

@@ -645,6 +645,11 @@ def nowcast_quantiles(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
     l_idx = np.searchsorted(levels, q_level)
     q[r_idx[ok], t_idx[ok], l_idx[ok]] = _filled(got["value"])[ok]
     rep[r_idx[ok], t_idx[ok]] = _filled(got["reported"])[ok]
+    inside = dates >= block.dates[0]  # a series shorter than the window: only its own dates
+    if not inside.all():
+        q, rep, dates = q[:, inside], rep[:, inside], dates[inside]
+        if len(dates) == 0:
+            return levels, q, rep, len(block.dates)
     start = int(np.searchsorted(block.dates, dates[0]))
     return levels, q, rep, start
 

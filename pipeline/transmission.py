@@ -114,7 +114,10 @@ def _reported(con: duckdb.DuckDBPyConnection, run_id: str, signal: str, block: S
     rep = np.full((n_reg, len(dates)), np.nan)
     rep[np.asarray(got["r"], dtype=np.int64), np.searchsorted(dates, ref)] = \
         _floats(got["reported"])
-    return rep, int(np.searchsorted(block.dates, dates[0]))
+    inside = dates >= block.dates[0]  # a series shorter than the window: only its own dates
+    if not inside.any():
+        return np.zeros((n_reg, 0)), len(block.dates)
+    return rep[:, inside], int(np.searchsorted(block.dates, dates[inside][0]))
 
 
 def _first_joint_draws(con: duckdb.DuckDBPyConnection, signal: str, block: SeriesBlock,
