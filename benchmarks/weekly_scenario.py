@@ -9,7 +9,7 @@ eventual weekly counts (every report, however late) and the R_t of each infectio
 simulator's daily R_t averaged over the week with weights infections / R_t, i.e. the expected
 infections' total infectiousness).
 
-    python -m benchmarks.weekly_scenario                   # README figures (24 regions, 4 runs)
+    python -m benchmarks.weekly_scenario                   # README figures (24 regions, 6 runs)
     python -m benchmarks.weekly_scenario --regions 12 --scenario long_tail
 
 Figures per scenario: 90 % / 50 % coverage of the nowcast of the last weeks against the eventual
@@ -233,7 +233,7 @@ def main(argv: list[str] | None = None) -> None:  # pragma: no cover - prints RE
 
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--regions", type=int, default=24)
-    ap.add_argument("--runs", type=int, default=4)
+    ap.add_argument("--runs", type=int, default=6)
     ap.add_argument("--scenario", action="append", choices=list(SCENARIOS))
     args = ap.parse_args(argv)
     rows = []
@@ -249,8 +249,15 @@ def main(argv: list[str] | None = None) -> None:  # pragma: no cover - prints RE
                 run_ids[d] = execute_run(con, d, Settings(), score_after=False)["run_id"]
             got = evaluate(con, world, run_ids)
         rows.append({"scenario": name, **got, "seconds": round(time.perf_counter() - t0, 1)})
-    df = pd.DataFrame(rows).set_index("scenario").T
-    print(df.to_string(float_format=lambda v: f"{v:.3f}"))
+    print("| scenario | nowcast cells | nowcast 90% / 50% coverage | nowcast log bias (reported "
+          "counts) | R_t cells | R_t 90% coverage / median abs error | seconds |")
+    print("|---|---|---|---|---|---|---|")
+    for r in rows:
+        print(f"| {r['scenario']} | {r['nowcast_cells']} | {r['nowcast_cov90']:.3f} / "
+              f"{r['nowcast_cov50']:.3f} | {r['nowcast_log_bias']:+.3f} "
+              f"({r['reported_log_bias']:+.3f}) | {r['rt_cells']} | {r['rt_cov90']:.3f} / "
+              f"{r['rt_mae']:.3f} | {r['seconds']} |")
+    print()
     print(forecast_table(rows))
 
 
