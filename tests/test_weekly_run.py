@@ -160,3 +160,22 @@ def test_cli_ingest_run_report_on_a_weekly_feed(prefect_server: Any, tmp_path: P
         con.close()
     pngs = list(out.glob("*/figures/*.png"))
     assert len(pngs) == 3 * 2
+
+
+def test_weekly_results_do_not_depend_on_batching(tmp_path: Path) -> None:
+    """batch_regions = 1 and 250 publish the same weekly nowcasts, R_t and forecasts (1e-9):
+    everything pooled over regions is computed before the batches."""
+    world = write_weekly_feed(tmp_path, n_regions=4, n_days=140)
+    got = []
+    for size in (1, 250):
+        con = store.memory()
+        ingest_spec(con, world.spec)
+        s = Settings()
+        s.base["batch_regions"] = size
+        rid = execute_run(con, world.as_of[-1], s, score_after=False)["run_id"]
+        got.append({t: con.execute(f"SELECT * EXCLUDE (run_id) FROM {t} WHERE run_id = ? "
+                                   "ORDER BY ALL", [rid]).df()
+                    for t in ("out.nowcast", "out.rt", "out.forecasts")})
+    for table, df in got[0].items():
+        assert len(df) > 0
+        pd.testing.assert_frame_equal(df, got[1][table], rtol=1e-9, obj=table)
