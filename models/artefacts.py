@@ -237,6 +237,10 @@ class ReportingRepair:
         (``level_window`` rolling median × weekday effect).
     weekday_weeks [8], weekday_prior [5.0], weekday_trim_z [4.0]
         Passed to :func:`weekday_effects` (``n_weeks``, ``prior_count``, ``trim_z``).
+    step [1]
+        Days between two columns of ``y``: 1 for daily series; 7 for weekly totals, whose
+        columns are weeks (every window above then counts weeks) and which have no weekday
+        effects (all effects are 1; the audit text speaks of weeks).
 
     Fitted attributes: ``clean_``, ``flag_``, ``actions_``, ``weekday_effect_``, ``adjusted_``,
     ``reported_``, ``expected_`` (level × weekday effect used by the last repair step).
@@ -261,6 +265,7 @@ class ReportingRepair:
         weekday_weeks: int = 8,
         weekday_prior: float = 5.0,
         weekday_trim_z: float = 4.0,
+        step: int = 1,
     ) -> None:
         self.negative_window = negative_window
         self.negative_cover = negative_cover
@@ -278,6 +283,7 @@ class ReportingRepair:
         self.weekday_weeks = weekday_weeks
         self.weekday_prior = weekday_prior
         self.weekday_trim_z = weekday_trim_z
+        self.step = step
 
     # ---- small utilities ---------------------------------------------------------------------
     def get_params(self) -> dict[str, object]:
@@ -285,6 +291,8 @@ class ReportingRepair:
         return {k: v for k, v in vars(self).items() if not k.endswith("_")}
 
     def _effects(self, x: np.ndarray) -> np.ndarray:
+        if int(self.step) != 1:  # weekly totals hold every weekday once: no weekday effect
+            return np.ones((np.atleast_2d(x).shape[0], 7))
         return weekday_effects(
             x,
             self._dates,
@@ -330,8 +338,12 @@ class ReportingRepair:
         n, t_len = y.shape
         if dates.shape != (t_len,):
             raise ValueError(f"dates has shape {dates.shape}, expected ({t_len},) to match y")
-        if t_len > 1 and not np.all(np.diff(dates).astype(np.int64) == 1):
-            raise ValueError("dates must be consecutive days (fill absent days with NaN in y)")
+        step = int(self.step)
+        if step < 1:
+            raise ValueError(f"step must be a positive number of days, got {self.step}")
+        if t_len > 1 and not np.all(np.diff(dates).astype(np.int64) == step):
+            what = "consecutive days" if step == 1 else f"{step} days apart"
+            raise ValueError(f"dates must be {what} (fill absent dates with NaN in y)")
         if np.isinf(y).any():
             raise ValueError("y contains infinite values")
         self._dates = dates
@@ -408,6 +420,8 @@ class ReportingRepair:
         self.expected_ = lev * eff[:, self._dow]
         acts = pd.DataFrame(self._actions, columns=["series", "t", "action", "delta", "detail"])
         acts.insert(2, "date", dates[acts["t"].to_numpy(dtype=np.int64)])
+        if step != 1:  # the columns are weeks: say so in the audit text
+            acts["detail"] = acts["detail"].str.replace(r"\bday(s?)\b", r"week\1", regex=True)
         self.actions_ = acts.sort_values(["series", "t"], kind="stable").reset_index(drop=True)
         del self._flags, self._actions
         return self

@@ -40,6 +40,7 @@ __all__ = [
     "response_operator",
     "richardson_lucy",
     "rounded_gamma_pmf",
+    "weekly_lags",
 ]
 
 
@@ -102,6 +103,28 @@ def delay_stack(spec: Any) -> np.ndarray:
     out = np.zeros((len(pmfs), max(p.size for p in pmfs)))
     for i, p in enumerate(pmfs):
         out[i, : p.size] = p
+    return out
+
+
+def weekly_lags(pmfs: Any, step: int = 7) -> np.ndarray:
+    """Daily lag pmf(s) (..., L+1) between two events -> lags in whole weeks (..., J+1).
+
+    The earlier event's day is taken uniform over its week (``step`` days), so week lag j has
+    ``P(j) = (1/step) sum_a sum_s p(s) [floor((a + s) / step) = j]``, a in 0..step-1: the
+    exact weekly lag when events are spread evenly over the week (a steady epidemic); under
+    growth (decline) the earlier event sits later (earlier) in its week than assumed.  Used for
+    the generation interval and the infection-to-reference-date delay of weekly signals; a
+    generation interval gets ``P(0) > 0`` (transmission within the week).
+    """
+    p = np.asarray(pmfs, dtype=float)
+    step = int(step)
+    if step < 1:
+        raise ValueError(f"step must be a positive number of days, got {step}")
+    n_lag = p.shape[-1]
+    out = np.zeros(p.shape[:-1] + ((n_lag - 1 + step - 1) // step + 1,))
+    s = np.arange(n_lag)
+    for a in range(step):
+        np.add.at(np.moveaxis(out, -1, 0), (a + s) // step, np.moveaxis(p, -1, 0) / step)
     return out
 
 

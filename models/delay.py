@@ -1379,7 +1379,8 @@ class DelayNowcaster:
         z = gens.normal((p.shape[1], n_draws))
         delta = self._cov_root[sl] @ z
         delta -= 0.5 * np.diagonal(self.log_pmf_cov_[sl], axis1=1, axis2=2)[:, :, None]
-        pmf = np.exp(delta, out=delta)
+        with np.errstate(over="ignore"):  # no reporting history at all: a useless, inf draw
+            pmf = np.exp(delta, out=delta)
         pmf *= p[:, :, None]
         with np.errstate(invalid="ignore", divide="ignore"):  # an all-zero pmf stays NaN
             pmf /= pmf.sum(axis=1, keepdims=True)

@@ -24,6 +24,16 @@ al. 2020).  :class:`InfectionRt` publishes R_t on the date of infection:
    variance, so the mixture is never narrower than its components on average).
 
 Quantiles use :func:`~tallywave.models.renewal.gamma_ppf_fast`.  No random numbers are drawn.
+
+**Weekly counts** (``step=7``): columns are weeks.  The daily delay and generation interval are
+turned into week lags by :func:`~tallywave.models.deconvolution.weekly_lags` (events spread
+evenly over their week), so the interval has mass at lag 0 (infections in the same week), which
+the total infectiousness ``Lambda_k = sum_{j >= 0} w_j I_{k-j}`` keeps; windows count weeks, and
+the growth rate comes from the daily interval (a daily rate, as for daily counts).  Under
+growth, infections sit later in their week than "evenly" assumes and the week-lag renewal pulls
+R towards 1 (about 1 % at a weekly growth of x1.4, 5 % at x2); the posterior is rescaled by the
+factor that is exact for steady exponential growth (:func:`~tallywave.models.renewal.
+weekly_r_factor`).
 """
 
 from __future__ import annotations
@@ -39,6 +49,7 @@ from tallywave.models.deconvolution import (
     delay_stack,
     response_operator,
     richardson_lucy,
+    weekly_lags,
 )
 from tallywave.models.renewal import (
     _convolve_last,
@@ -46,6 +57,7 @@ from tallywave.models.renewal import (
     gamma_ppf_fast,
     growth_rate_from_r,
     matched_gamma,
+    weekly_r_factor,
 )
 
 __all__ = ["InfectionRt"]
@@ -91,13 +103,19 @@ class InfectionRt:
     window's infections would be counted in the last ``recent_days`` days or later);
     ``keep_components`` keeps the mixture's components of the days the draws reach
     (``components_``: a list of (series, days, shape, rate, weight) per delay and interval, the
-    draws on axis 1 of shape and rate; for checking the published gamma).
+    draws on axis 1 of shape and rate; for checking the published gamma).  ``step``: days per
+    column of the counts, 1 (daily) or 7 (weekly totals; ``window`` and ``recent_days`` then
+    count weeks, ``delay`` and ``interval`` stay daily and are turned into week lags;
+    ``growth_correction`` then rescales the posterior by
+    :func:`~tallywave.models.renewal.weekly_r_factor`, the week-lag interval's pull of R towards
+    1 under growth, exact for steady exponential growth; ``components_`` are not rescaled).
     """
 
     def __init__(self, *, window: int = 7, align: str = "centre", prior_shape: float = 1.0,
                  prior_scale: float = 5.0, min_infections: float = 12.0, iterations: int = 10,
                  dispersion: float | None = None, recent_days: int = 14,
-                 recent_share: float = 0.1, keep_components: bool = False) -> None:
+                 recent_share: float = 0.1, keep_components: bool = False,
+                 step: int = 1, growth_correction: bool = True) -> None:
         self.window = window
         self.align = align
         self.prior_shape = prior_shape
@@ -108,6 +126,8 @@ class InfectionRt:
         self.recent_days = recent_days
         self.recent_share = recent_share
         self.keep_components = keep_components
+        self.step = step
+        self.growth_correction = growth_correction
 
     # -- parameters ----------------------------------------------------------------------------
 
@@ -129,6 +149,8 @@ class InfectionRt:
             raise ValueError("min_infections must be >= 0")
         if self.dispersion is not None and not self.dispersion > 0.0:
             raise ValueError("dispersion (NB size k) must be positive, inf or None")
+        if self.step not in (1, 7):
+            raise ValueError(f"step must be 1 (daily) or 7 (weekly), got {self.step}")
 
     # -- fitting -------------------------------------------------------------------------------
 
@@ -155,6 +177,9 @@ class InfectionRt:
             raise ValueError("observed counts must be finite and non-negative")
         fs = delay_stack(delay)
         ws = _interval_stack(interval)
+        self.daily_interval_pmfs_ = ws
+        if self.step != 1:
+            fs, ws = weekly_lags(fs, self.step), weekly_lags(ws, self.step)
         dw = _weights(delay_weights, fs.shape[0], "delay_weights")
         iw = _weights(interval_weights, ws.shape[0], "interval_weights")
         n, n_days = y.shape
@@ -162,6 +187,12 @@ class InfectionRt:
         dy, start = self._draw_changes(draws, draws_start, y)
         decs = [richardson_lucy(y, f, n_iter=int(self.iterations), n_before=nb) for f in fs]
         k_hat = self._dispersion_of(y, fs[0], n_days if start is None else start)
+        if self.step != 1 and self.dispersion is None:
+            # A weekly total holds the echo, within its own week, of its infections' noise (a
+            # share w_0 of the infectiousness of a week's infections acts in that week): that
+            # inflates its variance by about 1 / (1 - R w_0)^2, but R's ratio I / Lambda, whose
+            # Lambda carries w_0 I of the week too, sees only the new noise.  At R ~ 1:
+            k_hat = k_hat / (1.0 - float(np.dot(iw, ws[:, 0]))) ** 2
         self.components_: list[tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, float]] = []
         e1 = np.zeros((n, n_days))
         e2 = np.zeros((n, n_days))
@@ -169,6 +200,11 @@ class InfectionRt:
         for f, dec, w_d in zip(fs, decs, dw, strict=True):
             self._accumulate(y, f, dec, ws, iw * w_d, k_hat, lo, hi, dy, start, e1, e2, b_min)
         var = np.maximum(e2 - e1**2, 0.0)
+        if self.step != 1 and self.growth_correction:
+            c = np.zeros(e1.shape)
+            for w_day, wgt in zip(self.daily_interval_pmfs_, iw, strict=True):
+                c += wgt * weekly_r_factor(e1, w_day, self.step)
+            e1, var = e1 * c, var * c**2
         shape, scale = matched_gamma(e1, var)
         first = lo + _span(ws)  # the window and the interval inside the observed days
         ok = (b_min >= self.min_infections) & np.isfinite(shape)
@@ -299,14 +335,16 @@ class InfectionRt:
         lag = inf_days[None, :] - inf_days[:, None]  # u - v for (v, u)
         mats = [win]
         for w in ws:
-            conv = np.where((lag >= 1) & (lag < w.size), w[np.clip(lag, 0, w.size - 1)], 0.0)
+            # lag 0 holds w[0]: 0 for a daily interval, transmission within the week if weekly
+            conv = np.where((lag >= 0) & (lag < w.size), w[np.clip(lag, 0, w.size - 1)], 0.0)
             mats.append(conv @ win)
         return tail, d_lam @ np.concatenate(mats, axis=1)
 
     def _dispersion_of(self, y: np.ndarray, f: np.ndarray, end: int) -> np.ndarray:
         """NB size k of daily infections per series, from the counts of days before ``end``.
 
-        Weekly totals ``Y_s`` (7-day sums, free of weekday effects) are compared with the
+        Weekly totals ``Y_s`` (7-day sums, free of weekday effects; the counts themselves when
+        they are weekly, then ``k`` is that of weekly infections) are compared with the
         log-linear interpolation of their neighbours, ``sqrt(Y_{s-7} Y_{s+7})``.  Poisson
         counting noise gives the residual a variance of 1.5 M (the neighbours add half a week's);
         NB excess of the infections of a day u adds ``c_u^2 m^2 / k``, where
@@ -319,15 +357,16 @@ class InfectionRt:
         n = y.shape[0]
         if self.dispersion is not None:
             return np.full(n, float(self.dispersion))
+        p = 7 // int(self.step)  # columns per week (weekly counts: the residuals are weekly too)
         cs = np.concatenate([np.zeros((n, 1)), np.cumsum(y[:, :end], axis=1)], axis=1)
-        week = cs[:, 7:] - cs[:, :-7]  # totals of days s..s+6
-        if week.shape[1] < 21:
+        week = cs[:, p:] - cs[:, :-p]  # totals of days s..s+6
+        if week.shape[1] < 3 * p:
             return np.full(n, np.inf)
-        mid = week[:, 7:-7]
-        pred = np.sqrt(week[:, :-14] * week[:, 14:])  # log-linear between the two neighbours
+        mid = week[:, p:-p]
+        pred = np.sqrt(week[:, :-2 * p] * week[:, 2 * p:])  # log-linear between the neighbours
         use = pred >= 10.0
         res2 = np.where(use, (mid - pred) ** 2, np.nan)
-        scale = np.where(use, _week_excess(f) * (pred / 7.0) ** 2, np.nan)
+        scale = np.where(use, _week_excess(f, p) * (pred / float(p)) ** 2, np.nan)
         # z_s(kappa) = res2_s / (1.5 pred_s + kappa scale_s) falls with kappa and crosses the
         # target at kappa_s, so median_s z_s(kappa) = target exactly at kappa = median_s kappa_s
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -367,12 +406,12 @@ class InfectionRt:
 
     def growth_rate(self, r_median: np.ndarray | None = None) -> np.ndarray:
         """Daily growth rate at the posterior median of R_t: the interval-weighted average of
-        the Wallinga & Lipsitch (2007) rates, one per candidate interval (same sign as
+        the Wallinga & Lipsitch (2007) rates, one per candidate (daily) interval (same sign as
         log R, so growth > 0 exactly when P(R_t > 1) > 1/2)."""
         self._fitted()
         med = self.quantiles([0.5])[..., 0] if r_median is None else r_median
         out = np.zeros(med.shape)
-        for w, wgt in zip(self.interval_pmfs_, self.interval_weights_, strict=True):
+        for w, wgt in zip(self.daily_interval_pmfs_, self.interval_weights_, strict=True):
             out += wgt * growth_rate_from_r(med, w)
         return out
 
@@ -381,20 +420,22 @@ class InfectionRt:
             raise RuntimeError("InfectionRt is not fitted; call fit() first")
 
 
-def _week_excess(f: np.ndarray) -> float:
+def _week_excess(f: np.ndarray, period: int = 7) -> float:
     """sum_u c_u^2 for the weekly residual of :meth:`InfectionRt._dispersion_of`: c_u is the
-    share of day u's counts in the week minus half the shares in the weeks either side."""
+    share of day u's counts in the week minus half the shares in the weeks either side
+    (``period`` columns per week: 7 for daily counts, 1 for weekly ones; the floor scales with
+    it)."""
     L = f.size
-    u = np.arange(-L - 7, 14)  # infection days (week = count days 0..6)
+    u = np.arange(-L - period, 2 * period)  # infection columns (week = count columns 0..p-1)
     cdf = np.concatenate([[0.0], np.cumsum(f)])
 
-    def share(t0: int) -> np.ndarray:  # share of day-u counts on days t0..t0+6
-        hi = np.clip(t0 + 7 - u, 0, L)
+    def share(t0: int) -> np.ndarray:  # share of column-u counts on columns t0..t0+p-1
+        hi = np.clip(t0 + period - u, 0, L)
         lo = np.clip(t0 - u, 0, L)
         return cdf[hi] - cdf[lo]
 
-    c = share(0) - 0.5 * (share(-7) + share(7))
-    return max(float(np.sum(c**2)), _EXCESS_FLOOR)
+    c = share(0) - 0.5 * (share(-period) + share(period))
+    return max(float(np.sum(c**2)), _EXCESS_FLOOR * period / 7)
 
 
 def _span(ws: np.ndarray) -> int:

@@ -25,6 +25,7 @@ from typing import Any
 import numpy as np
 from scipy import interpolate, signal, special
 
+from tallywave.models.deconvolution import weekly_lags
 from tallywave.models.distributions import discretise_gamma_interval
 
 __all__ = [
@@ -36,6 +37,7 @@ __all__ = [
     "reproduction_number_from_growth",
     "resolve_interval",
     "total_infectiousness",
+    "weekly_r_factor",
 ]
 
 _BLOCK_ELEMENTS = 2_000_000  # working-set size (elements) for blocked mixture computations
@@ -624,6 +626,40 @@ def _growth_newton(
         r_all[start : start + block] = r
         tilted_all[start : start + block] = (e @ s) / e.sum(axis=1)
     return r_all, tilted_all
+
+
+_WEEKLY_MAPS: dict[tuple[bytes, int], tuple[np.ndarray, np.ndarray]] = {}
+
+
+def weekly_r_factor(r_weekly: Any, interval_pmf: Any, step: int = 7) -> np.ndarray:
+    """Factor taking R estimated from weekly totals with the week-lag interval
+    (:func:`~tallywave.models.deconvolution.weekly_lags`, events spread evenly over the week)
+    to the R of the daily interval, exact under steady exponential growth.
+
+    Under growth at daily rate r the week-lag renewal gives ``1 / sum_j W_j e^{-7 r j}`` where
+    the daily one gives ``1 / sum_s w_s e^{-r s}`` (Wallinga & Lipsitch 2007): infections sit
+    later in their week than "evenly" assumes, so the weekly R is pulled towards 1.  Both are
+    tabulated on a grid of weekly growth rates (-3..3) and matched; 1 at R = 1; the factor is
+    held constant beyond the grid.
+    """
+    w = resolve_interval(interval_pmf)
+    key = (w.tobytes(), int(step))
+    grid = _WEEKLY_MAPS.get(key)
+    if grid is None:
+        rho = np.linspace(-3.0, 3.0, 1201)  # weekly log growth
+        big_w = weekly_lags(w, step)
+        j = np.arange(big_w.size)
+        log_hat = -special.logsumexp(np.log(np.maximum(big_w, 1e-300))[None, :]
+                                     - rho[:, None] * j[None, :], axis=1)
+        log_true = np.log(reproduction_number_from_growth(rho / step, w))
+        grid = (log_hat, log_true - log_hat)
+        if len(_WEEKLY_MAPS) > 64:
+            _WEEKLY_MAPS.clear()
+        _WEEKLY_MAPS[key] = grid
+    r = np.asarray(r_weekly, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = np.exp(np.interp(np.log(r), grid[0], grid[1]))
+    return np.where(np.isfinite(r) & (r > 0.0), out, 1.0)
 
 
 def doubling_time(growth_rate: Any) -> np.ndarray:

@@ -18,6 +18,12 @@ measured on simulated outbreaks, ``benchmarks/forecast_eval.py``):
   (a number or one per series; :func:`estimate_dispersion` estimates it from the recent series),
   added once on top of the latent path (the latent path itself carries no count noise).
 
+Weekly totals are projected day by day and summed back into weeks: :func:`weeks_to_days`
+spreads each week evenly over its days (on which a trailing 7-day R_t estimate is exactly the
+renewal of week lags, :func:`~tallywave.models.deconvolution.weekly_lags`), and
+:func:`days_to_weeks` sums the projected days; :func:`one_week_ahead_expected` gives the
+one-week-ahead renewal predictions whose errors set a weekly series' count noise.
+
 Estimation of R_t itself: :mod:`tallywave.models.renewal`.
 """
 
@@ -29,6 +35,7 @@ from typing import Any
 import numpy as np
 
 from tallywave.models.base import QuantileForecast, RandomState, SeriesRandom
+from tallywave.models.deconvolution import weekly_lags
 from tallywave.models.renewal import (
     CoriEstimator,
     _as_incidence,
@@ -36,8 +43,8 @@ from tallywave.models.renewal import (
     resolve_interval,
 )
 
-__all__ = ["RenewalForecaster", "estimate_dispersion", "estimate_log_r_drift", "one_step_expected",
-           "sample_r"]
+__all__ = ["RenewalForecaster", "days_to_weeks", "estimate_dispersion", "estimate_log_r_drift",
+           "one_step_expected", "one_week_ahead_expected", "sample_r", "weeks_to_days"]
 
 #: Bounds of an estimated negative-binomial size (below 1 a daily count is wilder than a
 #: geometric one; above 1e4 it is Poisson for any count seen in practice).
@@ -103,6 +110,46 @@ def one_step_expected(y: np.ndarray, interval_pmf: Any, window: int = 7) -> np.n
     mu = np.full(arr.shape, np.nan)
     mu[:, 1:] = est.mean_[:, :-1] * est.infectiousness_[:, 1:]
     return mu
+
+
+def weeks_to_days(x: np.ndarray, step: int = 7) -> np.ndarray:
+    """Weekly totals (..., W) spread evenly over their days (..., step W): each week's total /
+    ``step`` on each of its days, the last day of the last week last."""
+    arr = np.asarray(x, dtype=float)
+    return np.repeat(arr / step, step, axis=-1)
+
+
+def days_to_weeks(x: np.ndarray, step: int = 7) -> np.ndarray:
+    """Daily values (..., step W) summed into consecutive weeks (..., W) (day 0 opens a week)."""
+    arr = np.asarray(x, dtype=float)
+    n_weeks = arr.shape[-1] // step
+    return arr[..., : n_weeks * step].reshape(arr.shape[:-1] + (n_weeks, step)).sum(axis=-1)
+
+
+def one_week_ahead_expected(y: np.ndarray, interval_pmf: Any, step: int = 7,
+                            prior_shape: float = 1.0, prior_scale: float = 5.0) -> np.ndarray:
+    """One-week-ahead renewal predictions of weekly totals (n_series, W); NaN where unknown.
+
+    With week lags ``W_j`` of the daily interval (events spread evenly over their week, so
+    ``W_0 > 0``: infections within the same week), R of week k is Cori et al.'s (2013)
+    posterior mean ``(a + y_k) / (1/b + Lambda_k)``, ``Lambda_k = sum_{j>=0} W_j y_{k-j}``; the
+    week-lag renewal ``y = R (W_0 y + sum_{j>=1} W_j y_{k+1-j})`` then predicts week k + 1 as
+    ``R_k sum_{j>=1} W_j y_{k+1-j} / (1 - R_k W_0)`` (``R_k W_0`` capped at 0.9) from weeks up
+    to k only.
+    """
+    arr = np.nan_to_num(np.atleast_2d(np.asarray(y, dtype=float)))
+    big_w = weekly_lags(resolve_interval(interval_pmf), step)
+    n, t = arr.shape
+    j = np.arange(1, big_w.size)
+    ahead = np.zeros((n, t))  # sum_{j>=1} W_j y_{k-j}: what earlier weeks bring to week k
+    for lag, wj in zip(j, big_w[1:], strict=True):
+        ahead[:, lag:] += wj * arr[:, : t - lag]
+    lam = ahead + big_w[0] * arr
+    r = (prior_shape + arr) / (1.0 / prior_scale + lam)
+    out = np.full((n, t), np.nan)
+    rw = np.minimum(r[:, :-1] * big_w[0], 0.9)
+    out[:, 1:] = np.where(lam[:, :-1] > 0, r[:, :-1] * ahead[:, 1:] / (1.0 - rw), np.nan)
+    return out
 
 
 def estimate_log_r_drift(r_mean: np.ndarray, log_sd: np.ndarray | None = None, lag: int = 7,

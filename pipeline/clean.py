@@ -17,7 +17,14 @@ import numpy as np
 import pandas as pd
 
 from tallywave.models.artefacts import ReportingRepair
-from tallywave.pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
+from tallywave.pipeline.frames import (
+    BatchFailure,
+    Mapper,
+    SeriesBlock,
+    batches,
+    in_steps,
+    serial_map,
+)
 from tallywave.pipeline.keys import clear_run
 from tallywave.pipeline.settings import Settings
 from tallywave.pipeline.store import insert_df
@@ -26,9 +33,14 @@ from tallywave.pipeline.vintages import dense_blocks, observation_blocks
 WEEKDAYS = ["Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday"]
 
 
-def repair_params(cfg: dict[str, Any]) -> dict[str, Any]:
-    """Map the documented settings onto the repair model's keyword parameters."""
-    return {
+def repair_params(cfg: dict[str, Any], step: int = 1) -> dict[str, Any]:
+    """Map the documented settings onto the repair model's keyword parameters.
+
+    A weekly signal (``step`` 7) gets its day-valued windows in whole weeks, rounded up, with
+    floors that leave a window something to work with (level: at least 5 weeks, odd; backlog
+    baseline: 3 weeks; take-back and spread: at least 2 weeks), and no weekday effects.
+    """
+    params = {
         "negative_window": int(cfg["clean_negative_window_days"]),
         "backlog_z": float(cfg["clean_dump_threshold"]),
         "backlog_min_excess": float(cfg["clean_dump_min_excess"]),
@@ -36,6 +48,12 @@ def repair_params(cfg: dict[str, Any]) -> dict[str, Any]:
         "level_window": int(cfg["clean_baseline_days"]),
         "weekday_weeks": int(cfg["clean_weekday_weeks"]),
     }
+    if step > 1:
+        level = in_steps(params["level_window"], step, 5)
+        params.update(negative_window=in_steps(params["negative_window"], step, 2),
+                      backlog_window=in_steps(params["backlog_window"], step, 2),
+                      level_window=level + 1 - level % 2, backlog_baseline_window=3, step=step)
+    return params
 
 
 def _repair_block(args: tuple[SeriesBlock, dict[str, Any]]) -> dict[str, Any]:
@@ -56,7 +74,7 @@ def clean(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, *,
     skipped: list[str] = []
     for signal, block in blocks.items():
         cfg = settings.for_signal(signal)
-        params = repair_params(cfg)
+        params = repair_params(cfg, block.step)
         parts = batches(len(block.regions), int(cfg["batch_regions"]))
         results = mapper(_repair_block, [(block.take(s), params) for s in parts])
         for part, res in zip(parts, results, strict=True):
@@ -78,6 +96,8 @@ def clean(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, *,
                     "detail": acts["detail"].to_numpy(),
                 })
                 n_actions += insert_df(con, "core.clean_actions", a)
+            if block.step != 1:  # weekly totals have no weekday effects
+                continue
             wk = np.asarray(res["weekday"])
             insert_df(con, "core.weekday_effects", pd.DataFrame({
                 "run_id": run_id, "region": np.repeat(sub.regions, 7), "signal": signal,
@@ -118,10 +138,12 @@ def _cleaned_frame(run_id: str, sub: SeriesBlock, res: dict[str, Any]) -> pd.Dat
 
 
 def cleaned_blocks(con: duckdb.DuckDBPyConnection, run_id: str, *, adjusted: bool = False,
-                   since: dt.date | None = None) -> dict[str, SeriesBlock]:
+                   since: dt.date | None = None, signals: list[str] | None = None
+                   ) -> dict[str, SeriesBlock]:
     """This run's cleaned series per signal (the input of the later stages).
 
-    ``since`` keeps only reference dates on or after it (stages that need the last months only).
+    ``since`` keeps only reference dates on or after it (stages that need the last months only);
+    ``signals`` only those signals.
     """
     col = "value_adjusted" if adjusted else "value_clean"
     sql = (f"SELECT region, signal, ref_date, {col} AS value FROM core.cleaned "
@@ -130,4 +152,7 @@ def cleaned_blocks(con: duckdb.DuckDBPyConnection, run_id: str, *, adjusted: boo
     if since is not None:
         sql += " AND ref_date >= ?"
         params.append(since)
+    if signals is not None:
+        sql += " AND signal IN (SELECT unnest(?::VARCHAR[]))"
+        params.append(list(signals))
     return dense_blocks(con, sql, params)

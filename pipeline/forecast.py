@@ -12,6 +12,15 @@ model (:mod:`tallywave.pipeline.scenarios`).  Every model forecasts the weekday-
 nowcast-corrected series; the quantiles are then multiplied by the weekday effect of each target
 date, so forecasts are in the same units as the reports they will be scored against.
 
+A weekly signal is forecast 1..4 weeks ahead (``horizon_days`` rounded up to weeks; published
+with ``horizon_days`` = 7, 14, 21, 28 and target dates on the week dates after its last week):
+the baseline moves in weeks (level = the last week, spread = observed h-week changes); the
+renewal projection runs day by day from the weekly totals spread evenly over their days (R_t
+from a trailing window of whole weeks, drift per day from the weekly R_t history) and the days
+are summed back into weeks, with count noise sized from one-week-ahead errors; the compartmental
+model is not fitted to weekly signals (one ``out.fits`` row per region says so) and the
+ensembles combine the members there are.
+
 Results never depend on batching: every random stream belongs to one (seed, signal, region)
 (:func:`tallywave.models.base.series_seeds`) and everything pooled over regions (the pooled R_t
 of small regions, the drift, the dispersion fallback) is computed over all regions of the signal
@@ -36,32 +45,57 @@ from tallywave.models.incidence import incidence_draws, median_corrected
 from tallywave.models.renewal import CoriEstimator
 from tallywave.models.renewal_forecast import (
     RenewalForecaster,
+    days_to_weeks,
     estimate_dispersion,
     estimate_log_r_drift,
     one_step_expected,
+    one_week_ahead_expected,
     sample_r,
+    weeks_to_days,
 )
 from tallywave.pipeline.clean import cleaned_blocks
 from tallywave.pipeline.ensemble_weights import MEMBERS, scoreboard_weights, weight_array
-from tallywave.pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
+from tallywave.pipeline.frames import (
+    BatchFailure,
+    Mapper,
+    SeriesBlock,
+    batches,
+    in_steps,
+    serial_map,
+)
 from tallywave.pipeline.nowcast import nowcast_quantiles
 from tallywave.pipeline.scenarios import describe, multipliers, scenario_frame, write_scenarios
 from tallywave.pipeline.settings import Settings
 from tallywave.pipeline.store import insert_df
 from tallywave.pipeline.transmission import interval_pmfs, nowcast_draws_for, rt_span
+from tallywave.pipeline.vintages import signal_steps
 
 COMPARTMENTAL_SIGNALS = ("cases", "admissions", "deaths")
 RENEWAL_HISTORY_DAYS = 90
 COMPARTMENTAL_BURN_IN_DAYS = 60  # history before the fit window (burn-in, people infected)
 DEFAULT_POPULATION = 1_000_000.0  # used (and said in out.fits) when a region's size is unknown
 POOLED = "(pooled regions)"  # the random stream of a signal's pooled R_t
+WEEKLY_HISTORY_DAYS = 56  # weekly signals read this much more history (whole weeks, lags)
+WEEKLY_NOISE_WEEKS = 10  # one-week-ahead errors of the last weeks that size the count noise
+WEEKLY_MESSAGE = ("weekly signal: the compartmental model is fitted to daily signals only; no "
+                  "compartmental forecast (renewal and baseline forecast it by week)")
+
+
+def in_weeks(cfg: dict[str, Any], step: int = 7) -> dict[str, Any]:
+    """A weekly signal's forecast settings in weeks: ``horizon_days`` becomes the number of
+    weeks ahead (28 days: 4 weeks); every other key keeps its meaning."""
+    return {**cfg, "horizon_days": in_steps(int(cfg["horizon_days"]), step)}
 
 
 # ----------------------------------------------------------------------------- pure batch jobs
 
 def _baseline_job(args: tuple) -> np.ndarray:
-    y, cfg = args
-    m = FlatBaseline(scale=str(cfg["baseline_scale"])).fit(y)
+    y, cfg, step = args
+    if step != 1:  # weekly: the last week is the level, changes over the last 8 weeks
+        m = FlatBaseline(scale=str(cfg["baseline_scale"]), level="last",
+                         window_days=in_steps(FlatBaseline().window_days, step)).fit(y)
+    else:
+        m = FlatBaseline(scale=str(cfg["baseline_scale"])).fit(y)
     return m.forecast(int(cfg["horizon_days"]), cfg["quantiles"]).values
 
 
@@ -79,24 +113,29 @@ def _last_day_r(est: CoriEstimator, n_draws: int, rnd: SeriesRandom) -> np.ndarr
 
 
 def _renewal_draws(values: np.ndarray, eventual: np.ndarray, rep: np.ndarray, start: int,
-                   cfg: dict[str, Any]) -> tuple[np.ndarray, int]:
+                   cfg: dict[str, Any], step: int = 1) -> tuple[np.ndarray, int]:
     """Incidence draws of the days that matter (the last day's R_t, the projection's lags and
-    the nowcast window; older days change nothing) and the number of draws."""
-    need = max(rt_span(cfg), values.shape[1] - start)
-    t_keep = min(values.shape[1], RENEWAL_HISTORY_DAYS, need)
+    the nowcast window; older days change nothing) and the number of draws.  Weekly series
+    (``step`` 7): the weeks that matter, spread evenly over their days."""
+    need = max(in_steps(rt_span(cfg), step), values.shape[1] - start)
+    t_keep = min(values.shape[1], in_steps(RENEWAL_HISTORY_DAYS, step), need)
     cut = values.shape[1] - t_keep
     n_draws = int(cfg["forecast_draws"])
     # the nowcast's joint draws, reused cyclically when fewer than n_draws were kept
     eventual = eventual[np.arange(n_draws) % max(eventual.shape[0], 1)]
-    return incidence_draws(np.nan_to_num(values[:, cut:]), eventual, rep, start - cut), n_draws
+    draws = incidence_draws(np.nan_to_num(values[:, cut:]), eventual, rep, start - cut)
+    return (draws if step == 1 else weeks_to_days(draws, step)), n_draws
 
 
 def _renewal_job(args: tuple) -> dict[str, Any]:
     """Renewal forecasts for one batch: R_t draws at the last day (mixed over nowcast draws)
     projected forward; a region too small for its own R_t uses the signal's pooled R_t (computed
     over all its regions before batching), and says so."""
-    values, eventual, rep, start, cfg, seeds, pooled_r, dispersion, capacity, drift = args
-    draws, n_draws = _renewal_draws(values, eventual, rep, start, cfg)
+    values, eventual, rep, start, cfg, seeds, pooled_r, dispersion, capacity, drift, step = args
+    if step != 1:  # weekly: days spread from the weeks, projected, summed back into weeks
+        cfg = _daily_view(cfg, step)
+        dispersion = np.asarray(dispersion, dtype=float) / step  # 7 days of NB(k/7): NB(k)-like
+    draws, n_draws = _renewal_draws(values, eventual, rep, start, cfg, step)
     pmfs = interval_pmfs(cfg)
     interval = pmfs if len(pmfs) > 1 else pmfs[0]
     rnd = SeriesRandom(seeds, len(seeds))
@@ -115,9 +154,23 @@ def _renewal_job(args: tuple) -> dict[str, Any]:
                                                                 spawn_key=(*s.spawn_key, 1))
                                          for s in seeds])
     fc.fit(draws, pmfs[0], r, dispersion=dispersion, capacity=capacity)
-    out = fc.quantiles(cfg["quantiles"])
+    if step == 1:
+        out = fc.quantiles(cfg["quantiles"])
+    else:
+        weeks = days_to_weeks(fc.sample(), step)  # (n_draws, n, H)
+        out = np.moveaxis(np.quantile(weeks, np.asarray(cfg["quantiles"], dtype=float), axis=0),
+                          0, -1)
+        out = np.maximum(np.maximum.accumulate(out, axis=-1), 0.0)
     out[~ok] = np.nan
     return {"q": out, "source": source, "r_median": np.median(r, axis=0)}
+
+
+def _daily_view(cfg: dict[str, Any], step: int) -> dict[str, Any]:
+    """The renewal job's settings for a weekly series projected by day: the horizon in days
+    (whole weeks) and an R_t window of whole weeks (so R_t of the spread days is that of week
+    lags)."""
+    return {**cfg, "horizon_days": step * in_steps(int(cfg["horizon_days"]), step),
+            "rt_window_days": step * in_steps(int(cfg["rt_window_days"]), step)}
 
 
 def _compartmental_job(args: tuple) -> dict[str, Any]:
@@ -169,10 +222,15 @@ def _weekday_factors(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
 
 
 def _to_report_units(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
-                     regions: np.ndarray, as_of: dt.date, q: np.ndarray) -> np.ndarray:
-    """Adjusted-scale quantiles (n, H, k) × each target date's weekday effect, monotone."""
-    targets = np.datetime64(as_of, "D") + np.arange(1, q.shape[1] + 1)
-    factor = _weekday_factors(con, run_id, signal, regions, targets)
+                     regions: np.ndarray, as_of: dt.date, q: np.ndarray,
+                     step: int = 1) -> np.ndarray:
+    """Adjusted-scale quantiles (n, H, k) × each target date's weekday effect, monotone
+    (weekly totals have no weekday effect)."""
+    if step == 1:
+        targets = np.datetime64(as_of, "D") + np.arange(1, q.shape[1] + 1)
+        factor = _weekday_factors(con, run_id, signal, regions, targets)
+    else:
+        factor = np.ones(q.shape[:2])
     out = np.maximum(q * factor[..., None], 0.0)
     out = np.maximum.accumulate(np.nan_to_num(out, nan=-1.0), axis=-1)
     out[out < 0] = np.nan
@@ -213,9 +271,13 @@ def _history_totals(con: duckdb.DuckDBPyConnection, run_id: str, before: dt.date
 
 
 def _rt_drift(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
-              cfg: dict[str, Any]) -> float:
+              cfg: dict[str, Any], step: int = 1) -> float:
     """Random-walk sd of log R_t per day for a signal, from this run's R_t history over all its
-    regions (``drift_sd`` is the ceiling, and the answer without history or estimation)."""
+    regions (``drift_sd`` is the ceiling, and the answer without history or estimation).  A
+    weekly signal's R_t history is by week: its changes per week give the sd per day / sqrt 7,
+    with the estimation noise left in (weekly R_t intervals are conservative, so removing their
+    width would remove more than the noise: measured in benchmarks/weekly_scenario, 90 %
+    coverage at 4 weeks 0.75-0.77 with it removed, 0.86-0.88 without)."""
     ceiling = float(cfg["drift_sd"])
     if not cfg["drift_from_rt"]:
         return ceiling
@@ -231,24 +293,39 @@ def _rt_drift(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
     width = df.pivot_table(index="region", columns="ref_date", values="width")
     width = width.reindex(index=wide.index, columns=wide.columns)
     log_sd = width.to_numpy(dtype=float) / (2.0 * 1.645 * wide.to_numpy(dtype=float))
+    if step != 1:
+        root = float(np.sqrt(step))
+        per_week = estimate_log_r_drift(
+            wide.to_numpy(dtype=float), None, lag=in_steps(int(cfg["rt_window_days"]), step),
+            bounds=(min(0.005, ceiling) * root, ceiling * root))
+        return per_week / root
     lag = int(cfg["rt_window_days"])
     return estimate_log_r_drift(wide.to_numpy(dtype=float), log_sd, lag=lag,
                                 bounds=(min(0.005, ceiling), ceiling))
 
 
-def _noise_sizes(y: np.ndarray, cfg: dict[str, Any]) -> np.ndarray:
+def _noise_sizes(y: np.ndarray, cfg: dict[str, Any], step: int = 1) -> np.ndarray:
     """Negative-binomial sizes of each region's count noise, from the errors of one-day-ahead
     renewal predictions over the last six weeks (regions with too few counts: the median of the
-    signal's others, all regions of the signal taken together before batching)."""
+    signal's others, all regions of the signal taken together before batching).  A weekly
+    signal: the size of weekly counts, from one-week-ahead errors over the last 10 weeks."""
+    if step != 1:
+        tail = y[:, -(WEEKLY_NOISE_WEEKS + 12):]
+        mu = one_week_ahead_expected(tail, interval_pmfs(cfg)[0], step)
+        return estimate_dispersion(tail, window=WEEKLY_NOISE_WEEKS, skip_last=1, expected=mu)
     tail = y[:, -90:]
     mu = one_step_expected(tail, interval_pmfs(cfg)[0], int(cfg["rt_window_days"]))
     return estimate_dispersion(tail, expected=mu)
 
 
 def _long(run_id: str, as_of: dt.date, model: str, signal: str, regions: np.ndarray,
-          q_levels: list[float], q: np.ndarray) -> pd.DataFrame:
+          q_levels: list[float], q: np.ndarray, last: np.datetime64 | None = None,
+          step: int = 1) -> pd.DataFrame:
+    """Long quantile rows; a weekly signal (``step`` 7) has targets ``last`` + 7 h (the weeks
+    after its last week) and horizon_days 7 h."""
     n, h, k = q.shape
-    targets = np.datetime64(as_of, "D") + np.arange(1, h + 1)
+    first = np.asarray(as_of if last is None else last, dtype="datetime64[D]")
+    targets = first + step * np.arange(1, h + 1)
     # region as a categorical: integer codes, not millions of Python strings (stored as VARCHAR)
     region = pd.Categorical.from_codes(np.repeat(np.arange(n, dtype=np.int32), h * k),
                                        categories=pd.Index(regions, dtype=object))
@@ -256,7 +333,7 @@ def _long(run_id: str, as_of: dt.date, model: str, signal: str, regions: np.ndar
         "run_id": run_id, "issued_on": np.datetime64(as_of, "D"), "model": model,
         "region": region, "signal": signal,
         "target_date": np.tile(np.repeat(targets, k), n),
-        "horizon_days": np.tile(np.repeat(np.arange(1, h + 1), k), n),
+        "horizon_days": np.tile(np.repeat(step * np.arange(1, h + 1), k), n),
         "q_level": np.tile(q_levels, n * h), "value": q.reshape(-1)})
     return df[np.isfinite(df["value"].to_numpy())]
 
@@ -308,25 +385,31 @@ def history_days(settings: Settings) -> int:
 def forecast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, *,
              run_id: str, mapper: Mapper = serial_map) -> dict[str, Any]:
     """Fit every model and write forecast quantiles for horizons 1..H of every region × signal."""
-    blocks = cleaned_blocks(con, run_id, adjusted=True,
-                            since=as_of - dt.timedelta(days=history_days(settings) - 1))
+    since = as_of - dt.timedelta(days=history_days(settings) - 1)
+    blocks = cleaned_blocks(con, run_id, adjusted=True, since=since)
+    weekly = sorted(set(signal_steps(con)) & set(blocks))
+    if weekly:  # weeks: a longer history in days for the same number of lags and changes
+        blocks.update(cleaned_blocks(con, run_id, adjusted=True, signals=weekly,
+                                     since=since - dt.timedelta(days=WEEKLY_HISTORY_DAYS)))
     wanted = list(settings.get("models"))
     run = _Run(con, as_of, settings, run_id, mapper)
     corrected: dict[str, tuple[np.ndarray, tuple]] = {}
     for signal, block in blocks.items():
         nq = nowcast_quantiles(con, run_id, signal, block)
         corrected[signal] = (median_corrected(np.nan_to_num(block.values), *nq), nq)
-        run.drift[signal] = _rt_drift(con, run_id, signal, settings.for_signal(signal))
-        run.dispersion[signal] = _noise_sizes(corrected[signal][0], settings.for_signal(signal))
+        run.drift[signal] = _rt_drift(con, run_id, signal, settings.for_signal(signal),
+                                      block.step)
+        run.dispersion[signal] = _noise_sizes(corrected[signal][0], settings.for_signal(signal),
+                                              block.step)
     if "compartmental" in wanted or ("renewal" in wanted and
                                      settings.get("renewal_depletion")):
         _run_compartmental(run, blocks, corrected, publish="compartmental" in wanted)
     for signal, block in blocks.items():
-        cfg = settings.for_signal(signal)
+        cfg = _signal_cfg(settings, signal, block)
         y = corrected[signal][0]
         parts = batches(len(block.regions), int(cfg["batch_regions"]))
         if "baseline" in wanted:
-            res = mapper(_baseline_job, [(y[s], cfg) for s in parts])
+            res = mapper(_baseline_job, [(y[s], cfg, block.step) for s in parts])
             run.results.setdefault("baseline", {})[signal] = _stack(
                 res, parts, len(block.regions), cfg, run.skipped, "baseline", signal,
                 block.regions)
@@ -337,10 +420,11 @@ def forecast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings,
     for model, per_signal in run.results.items():
         for signal, q in per_signal.items():
             block = blocks[signal]
-            q_out = _to_report_units(con, run_id, signal, block.regions, as_of, q)
+            q_out = _to_report_units(con, run_id, signal, block.regions, as_of, q, block.step)
+            last = None if block.step == 1 else block.dates[-1]
             n_rows += insert_df(con, "out.forecasts", _long(
                 run_id, as_of, model, signal, block.regions,
-                settings.for_signal(signal)["quantiles"], q_out))
+                settings.for_signal(signal)["quantiles"], q_out, last, block.step))
     _publish_scenarios(run, blocks)
     run.lines.insert(0, f"{n_rows} quantile rows for {', '.join(run.results) or 'no models'}")
     out: dict[str, Any] = {"line": "; ".join(run.lines), "rows": n_rows}
@@ -349,37 +433,47 @@ def forecast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings,
     return out
 
 
+def _signal_cfg(settings: Settings, signal: str, block: SeriesBlock) -> dict[str, Any]:
+    """One signal's settings as the stage uses them (a weekly signal's horizon in weeks)."""
+    cfg = settings.for_signal(signal)
+    return cfg if block.step == 1 else in_weeks(cfg, block.step)
+
+
 def _run_renewal(run: _Run, signal: str, block: SeriesBlock, y: np.ndarray,
                  parts: list[slice]) -> None:
     """Renewal forecasts of one signal: pooled R_t and dispersion over all regions first."""
     con, cfg = run.con, run.settings.for_signal(signal)
+    step = block.step
     seed = int(cfg["seed"])
     n_draws = int(cfg["forecast_draws"])
     eventual, rep, start = nowcast_draws_for(con, run.run_id, signal, block, n_draws, seed)
     values = np.nan_to_num(block.values)
-    pooled_r = _pooled_r(values, eventual, rep, start, cfg, signal)
+    pooled_r = _pooled_r(values, eventual, rep, start, cfg, signal, step)
     dispersion = run.dispersion[signal]
     capacity = run.capacity.get(signal, np.full(len(block.regions), np.nan))
     if not cfg["renewal_depletion"]:
         capacity = np.full(len(block.regions), np.nan)
     seeds = series_seeds(seed, signal, block.regions)
     jobs = [(values[s], eventual[:, s], rep[s], start, cfg, seeds[s], pooled_r,
-             dispersion[s], capacity[s], run.drift[signal]) for s in parts]
+             dispersion[s], capacity[s], run.drift[signal], step) for s in parts]
     res = run.mapper(_renewal_job, jobs)
     _renewal_fits(run, signal, block, parts, res, dispersion, capacity)
     res = [r if isinstance(r, BatchFailure) else r["q"] for r in res]
     run.results.setdefault("renewal", {})[signal] = _stack(
-        res, parts, len(block.regions), cfg, run.skipped, "renewal", signal, block.regions)
+        res, parts, len(block.regions), _signal_cfg(run.settings, signal, block), run.skipped,
+        "renewal", signal, block.regions)
 
 
 def _pooled_r(values: np.ndarray, eventual: np.ndarray, rep: np.ndarray, start: int,
-              cfg: dict[str, Any], signal: str) -> np.ndarray | None:
+              cfg: dict[str, Any], signal: str, step: int = 1) -> np.ndarray | None:
     """Draws of the R_t of all the signal's regions pooled (their summed incidence), for the
     regions too small for their own; summed in chunks, so memory stays bounded."""
     total = None
+    if step != 1:
+        cfg = _daily_view(cfg, step)
     for lo in range(0, values.shape[0], 250):
         s = slice(lo, lo + 250)
-        d, _ = _renewal_draws(values[s], eventual[:, s], rep[s], start, cfg)
+        d, _ = _renewal_draws(values[s], eventual[:, s], rep[s], start, cfg, step)
         part = d.sum(axis=1, keepdims=True)
         total = part if total is None else total + part
     if total is None:
@@ -424,7 +518,9 @@ def _run_compartmental(run: _Run, blocks: dict[str, SeriesBlock],
     """Joint fit per region over the signals the model knows; fail soft per region.  Also the
     scenarios and the susceptible pool the renewal projection depletes."""
     con, settings = run.con, run.settings
-    sigs = [s for s in COMPARTMENTAL_SIGNALS if s in blocks]
+    sigs = [s for s in COMPARTMENTAL_SIGNALS if s in blocks and blocks[s].step == 1]
+    if publish:
+        _weekly_refusals(run, blocks)
     if not sigs:
         run.lines.append("compartmental: no cases/admissions/deaths signal")
         return
@@ -504,6 +600,19 @@ def _run_compartmental(run: _Run, blocks: dict[str, SeriesBlock],
     run.lines.append(f"compartmental: {n_conv}/{len(regions)} regions converged")
 
 
+def _weekly_refusals(run: _Run, blocks: dict[str, SeriesBlock]) -> None:
+    """One ``out.fits`` row per region of every weekly signal the compartmental model would
+    otherwise fit: it is not fitted to weekly signals, and says so."""
+    for s in COMPARTMENTAL_SIGNALS:
+        if s in blocks and blocks[s].step != 1:
+            regions = blocks[s].regions
+            insert_df(run.con, "out.fits", pd.DataFrame({
+                "run_id": run.run_id, "region": regions, "model": "compartmental",
+                "params_json": None, "objective": np.nan, "converged": False,
+                "message": WEEKLY_MESSAGE, "signal": s}))
+            run.lines.append(f"compartmental: {s} is weekly, not fitted")
+
+
 def _ensembles(run: _Run, blocks: dict[str, SeriesBlock], wanted: list[str]) -> None:
     """The plain ensemble and the scoreboard-weighted one, from the members (never the
     baseline); weights published in out.ensemble_weights."""
@@ -522,7 +631,8 @@ def _ensembles(run: _Run, blocks: dict[str, SeriesBlock], wanted: list[str]) -> 
             continue
         stack = [run.results[m][signal] for m in mem]
         h = stack[0].shape[1]
-        w = weight_array(table, signal, mem, h)
+        step = blocks[signal].step
+        w = weight_array(table, signal, mem, step * h)[step - 1::step]  # horizon h: day step h
         out = np.empty_like(stack[0])
         for day in range(h):
             out[:, day:day + 1] = quantile_ensemble([a[:, day:day + 1] for a in stack],

@@ -41,10 +41,17 @@ from tallywave.models.delay import (
     mean_delay_by_week,
     weekday_lr_test,
 )
-from tallywave.pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
+from tallywave.pipeline.frames import (
+    BatchFailure,
+    Mapper,
+    SeriesBlock,
+    batches,
+    in_steps,
+    serial_map,
+)
 from tallywave.pipeline.settings import Settings
 from tallywave.pipeline.store import insert_df
-from tallywave.pipeline.vintages import vintages_as_of
+from tallywave.pipeline.vintages import signal_steps, vintages_as_of
 
 NOWCAST_LEVELS = [0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975]
 #: Weekday effects are kept for a signal when the quasi-likelihood ratio test rejects "no
@@ -74,11 +81,12 @@ class Triangle:
     cells: np.ndarray  # (n_regions, n_ref, D+1)
     latest: np.ndarray  # (n_regions, n_ref) value known on as_of (all delays, incl. > D)
     tail: bool = False
+    step: int = 1  # days between two rows (and two delays): 7 for a weekly signal
 
     def take(self, idx: Any) -> Triangle:
         """The triangle of a subset of regions."""
         return Triangle(self.signal, self.regions[idx], self.dates, self.cells[idx],
-                        self.latest[idx], self.tail)
+                        self.latest[idx], self.tail, self.step)
 
     def aligned(self, regions: np.ndarray) -> Triangle:
         """The same triangle with rows for ``regions`` (NaN cells, 0 reported where absent)."""
@@ -89,12 +97,13 @@ class Triangle:
         ok = idx >= 0
         cells[ok] = self.cells[idx[ok]]
         latest[ok] = self.latest[idx[ok]]
-        return Triangle(self.signal, np.asarray(regions), self.dates, cells, latest, self.tail)
+        return Triangle(self.signal, np.asarray(regions), self.dates, cells, latest, self.tail,
+                        self.step)
 
 
 def build_triangles(vintages: pd.DataFrame, as_of: dt.date, max_delay: int, n_ref: int,
-                    first_as_of: dict[str, dt.date], *, tail: bool = False
-                    ) -> dict[str, Triangle]:
+                    first_as_of: dict[str, dt.date], *, tail: bool = False,
+                    steps: dict[str, int] | None = None) -> dict[str, Triangle]:
     """Turn vintage rows (region, signal, ref_date, as_of, value) into one triangle per signal.
 
     The value of a ref date known at delay d is the last vintage with as_of <= ref_date + d; the
@@ -102,22 +111,37 @@ def build_triangles(vintages: pd.DataFrame, as_of: dt.date, max_delay: int, n_re
     never seen at small delays, so their rows are left unobserved (NaN) rather than guessed.
     ``tail``: the last column is the "≥ D" bin (value on as_of minus the value known at D - 1)
     instead of the single delay D.
+
+    A weekly signal (``steps[signal] = 7``) gets a triangle in weeks: rows are its week dates up
+    to the last one on or before as_of, and delay k is what was known ``offset + 7 k`` days after
+    the week's date, where ``offset`` = as_of - that last week date (0..6): the report grid is
+    anchored on as_of's weekday, so the newest week has delay 0 on as_of whatever the weekday.
+    ``max_delay`` and ``n_ref`` then count weeks.
     """
     out: dict[str, Triangle] = {}
     end = np.datetime64(as_of, "D")
-    start = end - np.timedelta64(n_ref - 1, "D")
-    dates = np.arange(start, end + np.timedelta64(1, "D"), dtype="datetime64[D]")
     D = max_delay
     for signal, g in vintages.groupby("signal", sort=True):
+        step = int((steps or {}).get(str(signal), 1))
         ref = g["ref_date"].to_numpy().astype("datetime64[D]")
         asof = g["as_of"].to_numpy().astype("datetime64[D]")
+        offset = 0
+        if step > 1 and ref.size:
+            offset = int((end - ref[0]).astype(int)) % step
+        last = end - np.timedelta64(offset, "D")
+        start = last - np.timedelta64(step * (n_ref - 1), "D")
+        dates = np.arange(start, last + np.timedelta64(1, "D"), step, dtype="datetime64[D]")
         keep = (ref >= start) & (asof <= end)
         g = g[keep]
         ref = ref[keep]
         asof = asof[keep]
         regions, r_idx = np.unique(g["region"].to_numpy().astype(str), return_inverse=True)
-        t_idx = (ref - start).astype(int)
-        delay = (asof - ref).astype(int)
+        if step == 1:
+            t_idx = (ref - start).astype(int)
+            delay = (asof - ref).astype(int)
+        else:
+            t_idx = (ref - start).astype(int) // step
+            delay = -(-((asof - ref).astype(int) - offset) // step)  # first report time >= as_of
         vals = g["value"].to_numpy(dtype=float)
         n = len(regions)
         known = np.full((n, n_ref, D + 1), np.nan)
@@ -148,9 +172,9 @@ def build_triangles(vintages: pd.DataFrame, as_of: dt.date, max_delay: int, n_re
         # reference dates before the first snapshot: never seen at small delays
         fa = first_as_of.get(str(signal))
         if fa is not None:
-            censored = dates < np.datetime64(fa, "D")
+            censored = dates + np.timedelta64(offset, "D") < np.datetime64(fa, "D")
             cells[:, censored, :] = np.nan
-        out[str(signal)] = Triangle(str(signal), regions, dates, cells, latest, tail)
+        out[str(signal)] = Triangle(str(signal), regions, dates, cells, latest, tail, step)
     return out
 
 
@@ -168,7 +192,7 @@ def _mask_backlog_rows(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
     pos = {r: i for i, r in enumerate(tri.regions)}
     n = 0
     for region, ref_date in rows:
-        t = int((np.datetime64(ref_date, "D") - tri.dates[0]).astype(int))
+        t = int((np.datetime64(ref_date, "D") - tri.dates[0]).astype(int)) // tri.step
         if region in pos and 0 <= t < len(tri.dates):
             tri.cells[pos[region], t, :] = np.nan
             n += 1
@@ -197,8 +221,11 @@ class SignalDelay:
 
 def _holidays(cfg: dict[str, Any], tri: Triangle) -> tuple[np.ndarray, list[str]]:
     """Report-day indices (day 0 = the triangle's first date) of listed holidays and of detected
-    closures (nothing reported on a weekday that usually brings reports); and their dates."""
+    closures (nothing reported on a weekday that usually brings reports); and their dates.
+    None for a weekly signal (a report week holds every weekday)."""
     start = tri.dates[0]
+    if tri.step != 1:
+        return np.zeros(0, dtype=np.int64), []
     listed = [np.datetime64(dt.date.fromisoformat(str(h)), "D") for h in
               cfg.get("nowcast_holidays", [])]
     idx = {int((d - start).astype(int)) for d in listed}
@@ -208,15 +235,19 @@ def _holidays(cfg: dict[str, Any], tri: Triangle) -> tuple[np.ndarray, list[str]
 
 
 def tail_history(con: duckdb.DuckDBPyConnection, as_of: dt.date, signal: str, max_delay: int,
-                 days: int, first_as_of: dt.date | None) -> pd.DataFrame:
+                 days: int, first_as_of: dt.date | None, step: int = 1, offset: int = 0
+                 ) -> pd.DataFrame:
     """Per reference date of the last ``days`` that is at least ``max_delay`` days old: the
     signal's reports at delays < D (summed over regions), those at delays >= D known on as_of,
     and how many tail delays it has had (age).  Dates whose first D days preceded the first
-    snapshot are left out (their split is unknown)."""
+    snapshot are left out (their split is unknown).  A weekly signal (``step`` 7) counts
+    ``max_delay`` and the age in weeks, delay k being ``offset + 7 k`` days after the week's
+    date (the triangle's report grid, see :func:`build_triangles`)."""
     D = int(max_delay)
+    last_before = offset + step * (D - 1)  # days after the ref date of delay D - 1
     lo = as_of - dt.timedelta(days=days - 1)
     if first_as_of is not None:
-        lo = max(lo, first_as_of - dt.timedelta(days=D - 1))
+        lo = max(lo, first_as_of - dt.timedelta(days=last_before))
     df = con.execute(
         """WITH k AS (
                SELECT region, ref_date,
@@ -228,9 +259,9 @@ def tail_history(con: duckdb.DuckDBPyConnection, as_of: dt.date, signal: str, ma
                GROUP BY region, ref_date)
            SELECT ref_date, sum(v_before) AS before, sum(v_latest - v_before) AS seen
            FROM k GROUP BY ref_date ORDER BY ref_date""",
-        [D, signal, as_of, lo, as_of - dt.timedelta(days=D)]).df()
+        [last_before + 1, signal, as_of, lo, as_of - dt.timedelta(days=offset + step * D)]).df()
     ref = pd.to_datetime(df["ref_date"]).dt.date
-    df["age"] = [(as_of - r).days - D + 1 for r in ref]
+    df["age"] = [((as_of - r).days - offset) // step - D + 1 for r in ref]
     return df
 
 
@@ -245,6 +276,8 @@ def _signal_delay(tri: Triangle, then: Triangle | None, cfg: dict[str, Any],
                         drift_sd=float(cfg["nowcast_drift_sd"]),
                         tail=cfg["nowcast_tail"] if tail else "none", max_delay=D,
                         pool_below=float(cfg["nowcast_pool_below"]), tol=1e-7)
+    if tri.step != 1:  # weekly rows: the drift's random walk takes one step per week (row)
+        template.segment_days = 1
     ratio = None
     if tail and history is not None and len(history) > D:
         size, mean, _ = fit_tail(history["before"].to_numpy(), history["seen"].to_numpy(),
@@ -254,7 +287,7 @@ def _signal_delay(tri: Triangle, then: Triangle | None, cfg: dict[str, Any],
         ratio = estimate_tail_shape(tri.cells, template)
     template.tail_shape = ratio
     stat, used = 0.0, False
-    if cfg["nowcast_weekday_effect"] and np.isfinite(tri.cells).any():
+    if cfg["nowcast_weekday_effect"] and tri.step == 1 and np.isfinite(tri.cells).any():
         stat, _, p_value = weekday_lr_test(tri.cells, template)
         used = p_value < WEEKDAY_TEST_LEVEL
     template.weekday_effect = used
@@ -263,7 +296,7 @@ def _signal_delay(tri: Triangle, then: Triangle | None, cfg: dict[str, Any],
     pooled_then = template_then = None
     gain = 0.0
     if then is not None and mode == "auto":
-        lag = int((tri.dates[-1] - then.dates[-1]).astype(int))
+        lag = int((tri.dates[-1] - then.dates[-1]).astype(int)) // tri.step
         template_then = DelayGLM(**{**template.get_params(),
                                     "first_ref_weekday": _weekday(then.dates[0]),
                                     "holidays": np.asarray(holidays) + lag})
@@ -295,7 +328,7 @@ def _fit_block(args: tuple[Triangle, Triangle | None, SignalDelay, dict[str, Any
         drift = np.zeros(n, dtype=bool)
     else:
         if mode == "auto" and then is not None and sig.template_then is not None:
-            lag = int((tri.dates[-1] - then.dates[-1]).astype(int))
+            lag = int((tri.dates[-1] - then.dates[-1]).astype(int)) // tri.step
             exposure, y = backtest_arrivals(tri.cells, then.cells, lag, sig.tail_shape, D + 1)
             choice = backtest_drift(then.cells, then.latest, exposure, y, sig.template_then,
                                     sig.pooled_then, family=cfg["nowcast_family"])
@@ -306,8 +339,10 @@ def _fit_block(args: tuple[Triangle, Triangle | None, SignalDelay, dict[str, Any
             drift = np.full(n, mode == "on")
         model = DelayGLM(**{**sig.template.get_params(),
                             "drift": drift if mode != "off" else False})
+    weekly = {} if tri.step == 1 else {"prior_window": in_steps(14, tri.step, 2)}
     nc = DelayNowcaster(model=model, family=cfg["nowcast_family"], window=D + 1,
-                        random_state=series_seeds(int(cfg["seed"]), tri.signal, tri.regions))
+                        random_state=series_seeds(int(cfg["seed"]), tri.signal, tri.regions),
+                        **weekly)
     nc.fit(tri.cells, reported=tri.latest, pooled=sig.pooled)
     # one set of joint draws gives both the published quantiles and the draws handed on to R_t
     # and the forecasts, so both describe the same predictive distribution
@@ -316,10 +351,12 @@ def _fit_block(args: tuple[Triangle, Triangle | None, SignalDelay, dict[str, Any
     q = np.maximum.accumulate(q, axis=-1)
     keep = min(int(cfg["nowcast_joint_draws"]), draws.shape[0])
     joint = np.ascontiguousarray(np.moveaxis(draws[:keep, :, -(D + 1):], 0, -1))
-    weekly = mean_delay_by_week(tri.cells, horizon=D - 1 if tri.tail else None)
+    by_week = mean_delay_by_week(tri.cells, horizon=D - 1 if tri.tail else None,
+                                 week_length=7 // tri.step)
+    week_start = tri.dates[by_week.week_first_row] - np.timedelta64(tri.step - 1, "D")
     m = nc.model_
     return {"pmf": nc.delay_pmf_, "q": q, "pooling": np.asarray(nc.pooling_, dtype=str),
-            "drift": (weekly.mean_delay, tri.dates[weekly.week_first_row]),
+            "drift": (by_week.mean_delay * tri.step, week_start),
             "draws": joint.astype(np.float32), "summary": _summary(m, drift, gain, miss, rows)}
 
 
@@ -353,9 +390,13 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
     lines: list[str] = []
     skipped: list[str] = []
     con.execute(DRAWS_DDL)
+    steps = signal_steps(con)
     for signal in sorted(firsts):
         cfg = settings.for_signal(signal)
-        got = _nowcast_signal(con, as_of, run_id, signal, cfg, firsts, mapper)
+        step = steps.get(signal, 1)
+        if step != 1:
+            cfg = in_weeks(cfg, step)
+        got = _nowcast_signal(con, as_of, run_id, signal, cfg, firsts, mapper, step)
         if got is None:
             continue
         n_written += got["rows"]
@@ -367,27 +408,40 @@ def nowcast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings, 
     return out
 
 
+def in_weeks(cfg: dict[str, Any], step: int = 7) -> dict[str, Any]:
+    """A weekly signal's nowcast settings in rows of its triangle (weeks): the day-valued spans
+    rounded up to whole weeks (at least 1, training at least 9 weeks), no report-weekday
+    effects and no report-day holidays (a report week holds every weekday)."""
+    return {**cfg, "max_delay_days": in_steps(int(cfg["max_delay_days"]), step),
+            "nowcast_training_days": in_steps(int(cfg["nowcast_training_days"]), step, 9),
+            "nowcast_backtest_days": in_steps(int(cfg["nowcast_backtest_days"]), step),
+            "nowcast_weekday_effect": False, "nowcast_holidays": []}
+
+
 def _triangles(con: duckdb.DuckDBPyConnection, as_of: dt.date, run_id: str, signal: str,
-               cfg: dict[str, Any], firsts: dict[str, dt.date]
+               cfg: dict[str, Any], firsts: dict[str, dt.date], step: int = 1
                ) -> tuple[Triangle, Triangle | None] | None:
     """The signal's triangle on as_of and (for the back-test) ``nowcast_backtest_days``
-    earlier, aligned to the same regions; None without data."""
+    earlier, aligned to the same regions; None without data.  A weekly signal (``step`` 7)
+    has ``cfg`` in weeks (:func:`in_weeks`)."""
     D = int(cfg["max_delay_days"])
-    n_ref = max(int(cfg["nowcast_training_days"]), D + 7)
+    n_ref = max(int(cfg["nowcast_training_days"]), D + 7) if step == 1 else \
+        max(int(cfg["nowcast_training_days"]), D + 2)
     lag = int(cfg["nowcast_backtest_days"]) if cfg["nowcast_drift"] == "auto" else 0
-    since = as_of - dt.timedelta(days=n_ref - 1 + lag)
+    since = as_of - dt.timedelta(days=step * (n_ref - 1 + lag) + step - 1)
     vint = vintages_as_of(con, as_of, since=since, signals=[signal])
     vint = vint[vint["signal"] == signal]
     if vint.empty:
         return None
     tail = cfg["nowcast_tail"] != "none" and cfg["nowcast_method"] == "glm"
-    tri = build_triangles(vint, as_of, D, n_ref, firsts, tail=tail)[signal]
+    steps = {signal: step}
+    tri = build_triangles(vint, as_of, D, n_ref, firsts, tail=tail, steps=steps)[signal]
     _mask_backlog_rows(con, run_id, signal, tri)
     then = None
     if lag > 0:
-        before = as_of - dt.timedelta(days=lag)
+        before = as_of - dt.timedelta(days=step * lag)
         old = vint[pd.to_datetime(vint["as_of"]).dt.date <= before]
-        got = build_triangles(old, before, D, n_ref, firsts, tail=tail).get(signal)
+        got = build_triangles(old, before, D, n_ref, firsts, tail=tail, steps=steps).get(signal)
         if got is not None and np.isfinite(got.cells).any():
             _mask_backlog_rows(con, run_id, signal, got)
             then = got.aligned(tri.regions)
@@ -402,17 +456,18 @@ def _leaf_rows(con: duckdb.DuckDBPyConnection, regions: np.ndarray) -> np.ndarra
 
 
 def _nowcast_signal(con: duckdb.DuckDBPyConnection, as_of: dt.date, run_id: str, signal: str,
-                    cfg: dict[str, Any], firsts: dict[str, dt.date], mapper: Mapper
-                    ) -> dict[str, Any] | None:
+                    cfg: dict[str, Any], firsts: dict[str, dt.date], mapper: Mapper,
+                    step: int = 1) -> dict[str, Any] | None:
     """Nowcast one signal: signal-level delay structure, batches, then the output tables."""
-    got = _triangles(con, as_of, run_id, signal, cfg, firsts)
+    got = _triangles(con, as_of, run_id, signal, cfg, firsts, step)
     if got is None:
         return None
     tri, then = got
     history = None
     if tri.tail:
         history = tail_history(con, as_of, signal, int(cfg["max_delay_days"]),
-                               int(cfg["nowcast_tail_days"]), firsts.get(signal))
+                               int(cfg["nowcast_tail_days"]), firsts.get(signal), step,
+                               int((np.datetime64(as_of, "D") - tri.dates[-1]).astype(int)))
     # parents of a region hierarchy are sums of their children: pooling them too would count
     # every report twice, so the signal-level structure is fitted on the leaf regions
     leaves = _leaf_rows(con, tri.regions)
@@ -460,7 +515,7 @@ def _write_outputs(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
     q = np.where(usable[:, None, None] & np.isfinite(q), q, tri.latest[..., None])
     insert_df(con, "out.delay_pmf", pd.DataFrame({
         "run_id": run_id, "region": np.repeat(tri.regions[usable], D + 1), "signal": signal,
-        "delay_days": np.tile(np.arange(D + 1), int(usable.sum())),
+        "delay_days": np.tile(np.arange(D + 1) * tri.step, int(usable.sum())),
         "prob": pmf[usable].reshape(-1)}))
     w = len(drift_dates)
     insert_df(con, "out.delay_drift", pd.DataFrame({
@@ -487,7 +542,7 @@ def _write_outputs(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
         "run_id": run_id, "region": tri.regions, "model": "nowcast",
         "params_json": [json.dumps({"pooling": str(p), "method": cfg["nowcast_method"],
                                     "family": cfg["nowcast_family"], "delay_model": str(dm),
-                                    "mean_delay_days": float(md) if ok else None})
+                                    "mean_delay_days": float(md) * tri.step if ok else None})
                         for p, dm, md, ok in zip(pooling, summary["model"],
                                                  summary["mean_today"], usable, strict=True)],
         "objective": np.nan, "converged": usable,
@@ -503,13 +558,14 @@ def _write_delay_model(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
                        usable: np.ndarray, pmf: np.ndarray, sig: SignalDelay) -> None:
     """``out.delay_model`` (per region) and ``out.delay_signal`` (the signal's pooled view)."""
     nan = np.where(usable, 1.0, np.nan)
+    days = nan * tri.step  # delays in days (weeks x 7 for a weekly signal)
     insert_df(con, "out.delay_model", pd.DataFrame({
         "run_id": run_id, "region": tri.regions, "signal": signal,
         "delay_model": np.where(usable, summary["model"], "insufficient"),
-        "mean_delay_days": summary["mean_today"] * nan,
-        "mean_delay_before_days": summary["mean_before"] * nan,
+        "mean_delay_days": summary["mean_today"] * days,
+        "mean_delay_before_days": summary["mean_before"] * days,
         "lookback_days": DRIFT_LOOKBACK_DAYS,
-        "tail_prob": summary["tail_prob"] * nan, "q99_delay_days": summary["q99"] * nan,
+        "tail_prob": summary["tail_prob"] * nan, "q99_delay_days": summary["q99"] * days,
         "backtest_gain": summary["gain"], "backtest_miss90": summary["miss90"],
         "backtest_rows": summary["rows"].astype(np.int64),
         "weekday_effect": sig.weekday_used, "n_holidays": len(sig.holidays)}))
@@ -528,8 +584,9 @@ def _write_delay_model(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
         "weekday_effect": [sig.weekday_used], "weekday_test": [sig.weekday_stat],
         "holidays": [json.dumps(sig.holidays)],
         "tail_size": [np.nan if sig.tail_shape is None else sig.tail_shape[0]],
-        "tail_mean_days": [np.nan if sig.tail_shape is None else sig.tail_shape[1]],
-        "tail_prob": [tail_prob], "mean_delay_days": [mean], "q99_delay_days": [q99],
+        "tail_mean_days": [np.nan if sig.tail_shape is None else sig.tail_shape[1] * tri.step],
+        "tail_prob": [tail_prob], "mean_delay_days": [mean * tri.step],
+        "q99_delay_days": [q99 * tri.step],
         "backtest_gain": [sig.agg_gain]}))
 
 
@@ -588,6 +645,11 @@ def nowcast_quantiles(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
     l_idx = np.searchsorted(levels, q_level)
     q[r_idx[ok], t_idx[ok], l_idx[ok]] = _filled(got["value"])[ok]
     rep[r_idx[ok], t_idx[ok]] = _filled(got["reported"])[ok]
+    inside = dates >= block.dates[0]  # a series shorter than the window: only its own dates
+    if not inside.all():
+        q, rep, dates = q[:, inside], rep[:, inside], dates[inside]
+        if len(dates) == 0:
+            return levels, q, rep, len(block.dates)
     start = int(np.searchsorted(block.dates, dates[0]))
     return levels, q, rep, start
 

@@ -92,7 +92,6 @@ def execute_run(
     if latest is None:
         raise UserError(f"no data known on {requested}: ingest feeds first "
                         "(or pick a later --as-of)")
-    _refuse_weekly(con, requested)
     # A run describes the newest data it has: when no feed published on the requested date, the
     # run is made as of the latest snapshot (and says so) rather than inventing empty days.
     day: dt.date = min(requested, latest)
@@ -141,19 +140,6 @@ def execute_run(
     result["line"] = (f"published run {run_id} (as of {day}) in {result['seconds']:.1f} s: "
                       + "; ".join(f"{k} {v.get('line', '')}" for k, v in summaries.items()))
     return result
-
-
-def _refuse_weekly(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> None:
-    """Weekly signals are ingested and stored, but the modelling stages are daily only so far:
-    refuse the run with one line naming the signal and its file rather than model weeks as days."""
-    row = con.execute(
-        "SELECT signal, source, path FROM core.signals WHERE frequency = 'weekly' AND signal IN "
-        "(SELECT DISTINCT signal FROM core.observations WHERE as_of <= ?) ORDER BY signal "
-        "LIMIT 1", [as_of]).fetchall()
-    if row:
-        signal, source, path = row[0]
-        raise UserError(f"{path}: signal '{signal}' (source {source}) is weekly; the modelling "
-                        "stages support daily signals only so far, so nothing was run")
 
 
 def _check_outputs(con: duckdb.DuckDBPyConnection, run_id: str, settings: Settings) -> None:

@@ -8,7 +8,9 @@ kept up to date with revisions that arrived after that run (``truth_run_id`` nam
 target counts as settled once the scoring date is at least the signal's settle horizon after it:
 with ``settle_rule = "delay"`` the longer of ``settle_days`` and the 99th percentile of the
 signal's delay distribution published by that run (``out.delay_signal``), at most
-``settle_max_days``; else ``settle_days`` (``out.scores.settle_days`` records it).  Scores are a pure function of (published forecasts,
+``settle_max_days``; else ``settle_days`` (``out.scores.settle_days`` records it).  A weekly
+signal is scored by week (truth and targets on its week dates) and its settle horizon is rounded
+up to whole weeks.  Scores are a pure function of (published forecasts,
 data known on the scoring date): each call recomputes them all in one transaction, so a revised
 truth is re-scored and ``truth_as_of`` says which data scored each row.  Mathematics:
 :mod:`tallywave.models.scores`; its SQL: :mod:`tallywave.pipeline.scores_sql`.
@@ -23,9 +25,11 @@ from typing import Any
 import duckdb
 import pandas as pd
 
+from tallywave.pipeline.frames import WEEK
 from tallywave.pipeline.scores_sql import score_sql
 from tallywave.pipeline.settings import Settings
 from tallywave.pipeline.store import transaction
+from tallywave.pipeline.vintages import signal_steps
 
 #: Columns of ``out.scores`` filled by the stage (run_id and scored_at are set around them).
 SCORE_COLUMNS = ("issued_on", "model", "region", "signal", "target_date", "horizon_days",
@@ -45,9 +49,10 @@ def truth_run(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> str | None:
 def settle_horizons(con: duckdb.DuckDBPyConnection, run_id: str | None,
                     settings: Settings) -> dict[str, int]:
     """Days after its target date a signal's truth counts as settled (see the module notes);
-    signals the run says nothing about use ``settle_days``."""
+    signals the run says nothing about use ``settle_days``; weekly signals whole weeks."""
     out: dict[str, int] = {}
     signals = [r[0] for r in con.execute("SELECT DISTINCT signal FROM out.forecasts").fetchall()]
+    weekly = signal_steps(con)
     q99: dict[str, float] = {}
     if run_id is not None:
         q99 = {str(s): float(v) for s, v in con.execute(
@@ -61,6 +66,8 @@ def settle_horizons(con: duckdb.DuckDBPyConnection, run_id: str | None,
             out[signal] = min(max(floor, math.ceil(q99[signal])), cap)
         else:
             out[signal] = floor
+        if signal in weekly:
+            out[signal] = WEEK * math.ceil(out[signal] / WEEK)
     return out
 
 

@@ -7,6 +7,12 @@ draws and over candidate delays and generation intervals (:class:`~tallywave.mod
 InfectionRt`).  ``out.rt`` and ``out.growth`` say so in ``date_basis`` (``'infection'``).  The
 growth rate is the Wallinga–Lipsitch (2007) rate at the posterior median of R_t (averaged over
 candidate intervals); doubling time is ln 2 / r (negative = halving time).
+
+A weekly signal is handled in weeks: its series are weekly totals, the delay and the generation
+interval are aggregated to week lags (events spread evenly over their week), the day-valued
+windows (``rt_window_days``, ``rt_nowcast_days``, ``rt_history_days``) are rounded up to whole
+weeks, and ``out.rt`` / ``out.growth`` rows sit on the week dates of the infection weeks (growth
+stays a daily rate, doubling time in days).
 """
 
 from __future__ import annotations
@@ -25,9 +31,17 @@ from tallywave.models.infection_rt import InfectionRt
 from tallywave.models.renewal import doubling_time, resolve_interval
 from tallywave.pipeline.clean import cleaned_blocks
 from tallywave.pipeline.errors import UserError
-from tallywave.pipeline.frames import BatchFailure, Mapper, SeriesBlock, batches, serial_map
+from tallywave.pipeline.frames import (
+    BatchFailure,
+    Mapper,
+    SeriesBlock,
+    batches,
+    in_steps,
+    serial_map,
+)
 from tallywave.pipeline.nowcast import nowcast_joint_draws, nowcast_quantiles
 from tallywave.pipeline.settings import Settings
+from tallywave.pipeline.vintages import signal_steps
 
 RT_LEVELS = [0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975]
 DATE_BASIS = "infection"  # the date R_t refers to (out.rt.date_basis)
@@ -100,7 +114,10 @@ def _reported(con: duckdb.DuckDBPyConnection, run_id: str, signal: str, block: S
     rep = np.full((n_reg, len(dates)), np.nan)
     rep[np.asarray(got["r"], dtype=np.int64), np.searchsorted(dates, ref)] = \
         _floats(got["reported"])
-    return rep, int(np.searchsorted(block.dates, dates[0]))
+    inside = dates >= block.dates[0]  # a series shorter than the window: only its own dates
+    if not inside.any():
+        return np.zeros((n_reg, 0)), len(block.dates)
+    return rep[:, inside], int(np.searchsorted(block.dates, dates[inside][0]))
 
 
 def _first_joint_draws(con: duckdb.DuckDBPyConnection, signal: str, block: SeriesBlock,
@@ -120,10 +137,11 @@ def _first_joint_draws(con: duckdb.DuckDBPyConnection, signal: str, block: Serie
                                               "r": np.arange(len(block.regions))}))
     try:
         got = con.execute(
-            "SELECT g.r, datediff('day', ?::DATE, n.ref_date) AS t, n.draw, n.value "
+            "SELECT g.r, datediff('day', ?::DATE, n.ref_date) // ? AS t, n.draw, n.value "
             "FROM nowcast_draws n JOIN _rt_regions g USING (region) "
             "WHERE n.signal = ? AND n.draw < ? AND n.ref_date BETWEEN ?::DATE AND ?::DATE",
-            [_day(dates[0]), signal, int(n_draws), _day(dates[0]), _day(dates[-1])]
+            [_day(dates[0]), int(block.step), signal, int(n_draws), _day(dates[0]),
+             _day(dates[-1])]
         ).fetchnumpy()
     finally:
         con.unregister("_rt_regions")
@@ -171,14 +189,16 @@ def _by_signal_names(settings: Settings) -> list[str]:
     return sorted(names)
 
 
-def estimator(cfg: dict[str, Any]) -> InfectionRt:
-    """The R_t estimator configured from one signal's settings."""
+def estimator(cfg: dict[str, Any], step: int = 1) -> InfectionRt:
+    """The R_t estimator configured from one signal's settings (``step`` 7: a weekly signal,
+    its windows in whole weeks)."""
     mean, sd = float(cfg["rt_prior_mean"]), float(cfg["rt_prior_sd"])
-    return InfectionRt(window=int(cfg["rt_window_days"]), align=str(cfg["rt_window_align"]),
+    return InfectionRt(window=in_steps(int(cfg["rt_window_days"]), step),
+                       align=str(cfg["rt_window_align"]),
                        prior_shape=(mean / sd) ** 2, prior_scale=sd ** 2 / mean,
                        min_infections=float(cfg["rt_min_infections"]),
                        iterations=int(cfg["rt_deconvolution_iterations"]),
-                       recent_days=int(cfg["rt_nowcast_days"]))
+                       recent_days=in_steps(int(cfg["rt_nowcast_days"]), step), step=step)
 
 
 def _estimate_block(args: tuple) -> dict[str, Any]:
@@ -187,7 +207,7 @@ def _estimate_block(args: tuple) -> dict[str, Any]:
     The counts are the cleaned series with the nowcast window completed by the mean of the
     joint draws; each draw's change of that window is one mixture component.
     """
-    values, eventual, rep, start, delays, cfg, t0 = args
+    values, eventual, rep, start, delays, cfg, t0, step = args
     values = np.nan_to_num(values)
     pmfs = interval_pmfs(cfg)
     draws = None
@@ -196,7 +216,7 @@ def _estimate_block(args: tuple) -> dict[str, Any]:
         draws = incidence_draws(values[:, start:start + t], eventual, rep, 0)
         values = values.copy()
         values[:, start:start + t] = draws.mean(axis=0)
-    est = estimator(cfg).fit(values, delays, pmfs if len(pmfs) > 1 else pmfs[0],
+    est = estimator(cfg, step).fit(values, delays, pmfs if len(pmfs) > 1 else pmfs[0],
                              draws=draws, draws_start=start)
     days = slice(t0, None)  # only the published days
     qs = est.quantiles(RT_LEVELS, days)
@@ -213,16 +233,22 @@ def transmission(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Setti
     skipped: list[str] = []
     n_rows = 0
     since = as_of - dt.timedelta(days=history_days(settings) - 1)
-    blocks = cleaned_blocks(con, run_id, adjusted=bool(settings.get("use_weekday_adjusted")),
-                            since=since)
+    adjusted = bool(settings.get("use_weekday_adjusted"))
+    blocks = cleaned_blocks(con, run_id, adjusted=adjusted, since=since)
+    weekly = sorted(set(signal_steps(con)) & set(blocks))
+    if weekly:  # whole weeks, and four more for the published weeks rounded up and the lags
+        blocks.update(cleaned_blocks(con, run_id, adjusted=adjusted, signals=weekly,
+                                     since=since - dt.timedelta(days=28)))
     for signal, block in blocks.items():
         cfg = settings.for_signal(signal)
         delays = delay_pmfs(cfg, signal)
         eventual, rep, start = nowcast_draws_for(con, run_id, signal, block,
                                                  int(cfg["rt_draws"]), int(cfg["seed"]))
         parts = batches(len(block.regions), int(cfg["batch_regions"]))
-        t0 = max(0, len(block.dates) - int(cfg["rt_history_days"]))  # first published day
-        jobs = [(block.values[s], eventual[:, s], rep[s], start, delays, cfg, t0) for s in parts]
+        published = in_steps(int(cfg["rt_history_days"]), block.step)
+        t0 = max(0, len(block.dates) - published)  # first published day (week)
+        jobs = [(block.values[s], eventual[:, s], rep[s], start, delays, cfg, t0, block.step)
+                for s in parts]
         results = mapper(_estimate_block, jobs)
         good: list[tuple[slice, dict[str, np.ndarray]]] = []
         for part, res in zip(parts, results, strict=True):
@@ -237,7 +263,8 @@ def transmission(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Setti
                    if k != "dependent"}
             cut["dependent"] = good[0][1]["dependent"]
             n_est = int(np.isfinite(cut["mean"]).any(axis=1).sum())
-            n_rows += _write(con, run_id, signal, block.regions[keep], block.dates[t0:], cut)
+            n_rows += _write(con, run_id, signal, block.regions[keep], block.dates[t0:], cut,
+                             block.step)
         lines.append(f"{signal}: {n_est}/{len(block.regions)} regions estimable")
     out = {"line": "; ".join(lines) or "no signals", "rows": n_rows}
     if skipped:
@@ -246,7 +273,7 @@ def transmission(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Setti
 
 
 def _write(con: duckdb.DuckDBPyConnection, run_id: str, signal: str, regions: np.ndarray,
-           dates: np.ndarray, res: dict[str, np.ndarray]) -> int:
+           dates: np.ndarray, res: dict[str, np.ndarray], step: int = 1) -> int:
     """Insert one signal's estimable cells into out.rt (long quantile form) and out.growth.
 
     Rows go in wide (one per region × day, one column per level) and DuckDB unnests the levels:
@@ -273,15 +300,15 @@ def _write(con: duckdb.DuckDBPyConnection, run_id: str, signal: str, regions: np
         con.execute(
             "INSERT INTO out.rt (run_id, region, signal, ref_date, q_level, value, mean, "
             "nowcast_dependent, date_basis) "
-            f"SELECT ?, g.region, ?, ?::DATE + w.t, unnest({levels}), unnest({values}), w.mean, "
-            "w.dep, ? FROM _rt_wide w JOIN _rt_names g USING (r)",
-            [run_id, signal, first, DATE_BASIS])
+            f"SELECT ?, g.region, ?, ?::DATE + w.t * ?, unnest({levels}), unnest({values}), "
+            "w.mean, w.dep, ? FROM _rt_wide w JOIN _rt_names g USING (r)",
+            [run_id, signal, first, int(step), DATE_BASIS])
         con.execute(
             "INSERT INTO out.growth (run_id, region, signal, ref_date, growth_rate, "
             "doubling_days, p_growing, rt_mean, nowcast_dependent, date_basis) "
-            "SELECT ?, g.region, ?, ?::DATE + w.t, w.growth, w.doubling, w.p, w.mean, w.dep, ? "
-            "FROM _rt_wide w JOIN _rt_names g USING (r)",
-            [run_id, signal, first, DATE_BASIS])
+            "SELECT ?, g.region, ?, ?::DATE + w.t * ?, w.growth, w.doubling, w.p, w.mean, w.dep, "
+            "? FROM _rt_wide w JOIN _rt_names g USING (r)",
+            [run_id, signal, first, int(step), DATE_BASIS])
     finally:
         con.unregister("_rt_wide")
         con.unregister("_rt_names")

@@ -20,7 +20,7 @@ import duckdb
 import numpy as np
 import pandas as pd
 
-from tallywave.pipeline.frames import SeriesBlock
+from tallywave.pipeline.frames import WEEK, SeriesBlock, week_axis_bounds
 from tallywave.pipeline.hierarchy import aggregate_parents
 from tallywave.pipeline.store import transaction
 
@@ -262,8 +262,9 @@ def dense_blocks(con: duckdb.DuckDBPyConnection, relation: str, params: list,
                  *, end: dt.date | None = None) -> dict[str, SeriesBlock]:
     """One :class:`SeriesBlock` per signal from a relation (region, signal, ref_date, value).
 
-    The same blocks as ``frames.to_blocks(df, end=end)`` of the relation's rows (regions sorted,
-    dates contiguous from the signal's first ref_date to its last or ``end``, NaN where no row),
+    The same blocks as ``frames.to_blocks(df, end=end, steps=signal_steps(con))`` of the
+    relation's rows (regions sorted, dates contiguous from the signal's first ref_date to its last
+    or ``end`` — every 7th day for a weekly signal —, NaN where no row),
     but the positions are computed in DuckDB and only numbers cross into Python: at thousands of
     regions this avoids millions of Python strings.  ``relation`` is trusted SQL (a query or
     table written by the pipeline, never user text); ``params`` fill its placeholders.
@@ -278,13 +279,17 @@ def dense_blocks(con: duckdb.DuckDBPyConnection, relation: str, params: list,
                            "list(DISTINCT region ORDER BY region) FROM _blocks_src "
                            "GROUP BY signal ORDER BY signal").fetchall()
         out: dict[str, SeriesBlock] = {}
+        steps = signal_steps(con)
         for signal, lo, hi, names in meta:
             regions = np.asarray(names, dtype=str)
             if len(regions) > 1 and not np.all(regions[:-1] < regions[1:]):
                 regions = np.unique(regions)  # a collation that differs from numpy's order
             hi = end if end is not None else hi
-            dates = np.arange(np.datetime64(lo, "D"), np.datetime64(hi, "D") + 1,
-                              dtype="datetime64[D]")
+            step = steps.get(str(signal), 1)
+            d_lo, d_hi = np.datetime64(lo, "D"), np.datetime64(hi, "D")
+            if step > 1:  # a weekly axis through the signal's week dates, ending by `end`
+                d_lo, d_hi = week_axis_bounds(np.array([d_lo]), d_lo, d_hi, step)
+            dates = np.arange(d_lo, d_hi + 1, step, dtype="datetime64[D]")
             con.register("_blocks_regions", pd.DataFrame(
                 {"region": regions, "r": np.arange(len(regions), dtype=np.int64)}))
             try:
@@ -298,11 +303,24 @@ def dense_blocks(con: duckdb.DuckDBPyConnection, relation: str, params: list,
             vals = np.full((len(regions), len(dates)), np.nan)
             v = got["v"]
             v = np.ma.filled(v.astype(float), np.nan) if np.ma.isMaskedArray(v) else v
-            vals[np.asarray(got["r"], dtype=np.int64), np.asarray(got["t"], dtype=np.int64)] = v
-            out[str(signal)] = SeriesBlock(str(signal), regions, dates, vals)
+            t = np.asarray(got["t"], dtype=np.int64)
+            if step > 1:
+                if np.any(t % step):
+                    raise ValueError(f"signal {signal!r} is weekly but has reference dates on "
+                                     "different weekdays")
+                t = t // step
+            vals[np.asarray(got["r"], dtype=np.int64), t] = v
+            out[str(signal)] = SeriesBlock(str(signal), regions, dates, vals, step)
         return out
     finally:
         con.execute("DROP TABLE IF EXISTS _blocks_src")
+
+
+def signal_steps(con: duckdb.DuckDBPyConnection) -> dict[str, int]:
+    """Days between two reference dates of each signal that is not daily (7 for a weekly
+    signal, from ``core.signals``); signals not listed are daily."""
+    return {str(r[0]): WEEK for r in con.execute(
+        "SELECT signal FROM core.signals WHERE frequency = 'weekly'").fetchall()}
 
 
 def observation_blocks(con: duckdb.DuckDBPyConnection, as_of: dt.date | str,

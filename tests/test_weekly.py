@@ -1,7 +1,7 @@
 """Weekly feeds (``frequency = "weekly"``): dates normalised to the week's last day, ISO and
 Sunday-start weeks, cumulative weekly totals differenced week by week, each signal's frequency
-recorded in core.signals, and a run refused with one clear line until the modelling stages
-support weeks.
+recorded in core.signals, and a run through every stage (a history too short for any forecast
+refused with one line).
 
 Calendar facts used below (checked with Python's ``datetime.date.isocalendar``, a reference
 implementation of ISO 8601 weeks): 2026-01-04 is a Sunday, the last day of ISO week 2026-W01;
@@ -19,7 +19,7 @@ import pandas as pd
 import pytest
 
 from tallywave.pipeline import store
-from tallywave.pipeline.errors import UserError
+from tallywave.pipeline.errors import RunFailed
 from tallywave.pipeline.ingest import ingest_spec
 from tallywave.pipeline.run import execute_run
 from tallywave.pipeline.settings import load_settings
@@ -96,19 +96,28 @@ def test_iso_week_labels_and_sunday_weeks(tmp_path: Path) -> None:
         ("cases", "monday"), ("deaths", "sunday")]
 
 
-def test_run_refuses_weekly_signal_with_one_line(tmp_path: Path) -> None:
-    """Until the modelling stages support weeks, a run with a weekly signal is refused with one
-    line naming the signal and its file, and nothing is written to out.*."""
+def test_run_with_a_weekly_signal(tmp_path: Path) -> None:
+    """A weekly signal runs through every stage (tests/test_weekly_run.py checks the numbers);
+    one with too short a history for any forecast is refused with one line, nothing published."""
     p = spec(tmp_path, "daily")
-    f = tmp_path / "cases" / "c_2026-01-10.csv"
+    f = tmp_path / "cases" / "c_2026-01-07.csv"
     f.write_text("region,week,n\nAsh,2026-01-04,4\n")
     con = store.memory()
     ingest_spec(con, p)
-    with pytest.raises(UserError) as info:
-        execute_run(con, D(2026, 1, 10), load_settings(None))
+    with pytest.raises(RunFailed) as info:
+        execute_run(con, D(2026, 1, 7), load_settings(None))
     msg = str(info.value)
-    assert "\n" not in msg and "'cases'" in msg and str(f) in msg and "weekly" in msg
-    assert con.execute("SELECT count(*) FROM out.runs").fetchall() == [(0,)]
+    assert "\n" not in msg and "'cases'" in msg and "nothing published" in msg
+    assert con.execute("SELECT count(*) FROM out.runs WHERE status = 'published'"
+                       ).fetchall() == [(0,)]
+    weeks = [D(2026, 1, 4) + dt.timedelta(days=7 * k) for k in range(6)]
+    (tmp_path / "cases" / "c_2026-02-11.csv").write_text("region,week,n\n" + "".join(
+        f"Ash,{w},{40 + 5 * k}\n" for k, w in enumerate(weeks)))
+    ingest_spec(con, p)
+    out = execute_run(con, D(2026, 2, 11), load_settings(None))
+    assert con.execute("SELECT status FROM out.runs WHERE run_id = ?", [out["run_id"]]
+                       ).fetchall() == [("published",)]
+    assert con.execute("SELECT max(ref_date) FROM out.nowcast").fetchall() == [(weeks[-1],)]
 
 
 def test_migration_records_existing_signals_as_daily(tmp_path: Path) -> None:
