@@ -1,7 +1,7 @@
 """Forecast accuracy on simulated outbreaks with known truth: relative WIS and coverage.
 
 ``python -m benchmarks.forecast_eval [--scenarios default,drift,...] [--seeds 1,2,3]
-[--regions 10] [--weeks 12] [--every 7] [--demo] [--out FILE.csv]``
+[--regions 10] [--weeks 12] [--every 7] [--demo] [--out FILE.csv] [--save DIR]``
 
 For every (scenario, seed) the invented outbreak simulator (:func:`tallywave.models.outbreak.
 simulate_outbreak`, with the parameters named below) produces a province, its epidemic and the
@@ -11,9 +11,11 @@ the files), then the whole daily run (clean → nowcast → R_t → forecasts) i
 ``--every`` days over ``--weeks`` weeks of as-of dates, each seeing only the vintages known then
 (daily runs give the scoreboard-weighted ensemble the scores it learns from).  Every published
 forecast is scored against the simulator's eventual counts (the truth, artefacts removed):
-WIS (Bracher et al. 2021), 50 % / 90 % coverage, and the pairwise relative WIS against the flat
-baseline (Cramer et al. 2022; :func:`tallywave.models.scores.pairwise_relative_wis`, the same
-definition as ``out.accuracy``).
+WIS (Bracher et al. 2021), 50 % / 90 % coverage — tie-corrected for counts (the scoring
+stage's ``cover_frac_50/90``, the share of the PIT range [F(y - 1), F(y)] inside the interval)
+and closed — and the pairwise relative WIS against the flat baseline (Cramer et al. 2022;
+:func:`tallywave.models.scores.pairwise_relative_wis`, the same definition as
+``out.accuracy``).  Tables print "rel WIS / cov50 / cov90" with closed coverage in brackets.
 
 Scenarios, built to break the methods (all keep the simulator's weekend testing dip, backlog
 dump and negative correction):
