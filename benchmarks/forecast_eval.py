@@ -1,7 +1,7 @@
 """Forecast accuracy on simulated outbreaks with known truth: relative WIS and coverage.
 
 ``python -m benchmarks.forecast_eval [--scenarios default,drift,...] [--seeds 1,2,3]
-[--regions 10] [--weeks 12] [--every 7] [--demo] [--out FILE.csv]``
+[--regions 10] [--weeks 12] [--every 7] [--demo] [--out FILE.csv] [--save DIR]``
 
 For every (scenario, seed) the invented outbreak simulator (:func:`tallywave.models.outbreak.
 simulate_outbreak`, with the parameters named below) produces a province, its epidemic and the
@@ -11,9 +11,11 @@ the files), then the whole daily run (clean → nowcast → R_t → forecasts) i
 ``--every`` days over ``--weeks`` weeks of as-of dates, each seeing only the vintages known then
 (daily runs give the scoreboard-weighted ensemble the scores it learns from).  Every published
 forecast is scored against the simulator's eventual counts (the truth, artefacts removed):
-WIS (Bracher et al. 2021), 50 % / 90 % coverage, and the pairwise relative WIS against the flat
-baseline (Cramer et al. 2022; :func:`tallywave.models.scores.pairwise_relative_wis`, the same
-definition as ``out.accuracy``).
+WIS (Bracher et al. 2021), 50 % / 90 % coverage — tie-corrected for counts (the scoring
+stage's ``cover_frac_50/90``, the share of the PIT range [F(y - 1), F(y)] inside the interval)
+and closed — and the pairwise relative WIS against the flat baseline (Cramer et al. 2022;
+:func:`tallywave.models.scores.pairwise_relative_wis`, the same definition as
+``out.accuracy``).  Tables print "rel WIS / cov50 / cov90" with closed coverage in brackets.
 
 Scenarios, built to break the methods (all keep the simulator's weekend testing dip, backlog
 dump and negative correction):
@@ -54,8 +56,11 @@ from tallywave.models.outbreak import (
     split_by_delay,
 )
 from tallywave.models.scores import (
+    coverage_fraction,
     interval_coverage,
+    log_wis,
     pairwise_relative_wis,
+    pit_bounds,
     weighted_interval_score,
 )
 from tallywave.pipeline import store
@@ -175,15 +180,23 @@ def score_forecasts(fc: pd.DataFrame, truth: pd.DataFrame) -> pd.DataFrame:
     out = wide[key + ["truth"]].copy()
     out["median"] = q[:, int(np.argmin(np.abs(levels - 0.5)))]
     out["wis"] = weighted_interval_score(y, levels, q).wis
+    out["wis_log"] = log_wis(y, levels, q)
     out["covered_50"] = interval_coverage(y, levels, q, 0.5)
     out["covered_90"] = interval_coverage(y, levels, q, 0.9)
+    # tie-corrected coverage of counts, the scoring stage's cover_frac_50/90 (out.accuracy's
+    # coverage_50/90): the share of the PIT range [F(y - 1), F(y)] inside the interval
+    low, high = pit_bounds(y, levels, q, tails="unknown", discrete=True)
+    out["cover_frac_50"] = coverage_fraction(low, high, 0.5)
+    out["cover_frac_90"] = coverage_fraction(low, high, 0.9)
     return out
 
 
 def run_scenario(scenario: str, seed: int, n_regions: int, weeks: int, settings: Settings,
-                 say: Callable[[str], None], every: int = 7) -> pd.DataFrame:
+                 say: Callable[[str], None], every: int = 7,
+                 save: Path | None = None) -> pd.DataFrame:
     """Simulate, run the pipeline every ``every`` days over ``weeks`` weeks of as-of dates,
-    score every published forecast against the truth."""
+    score every published forecast against the truth (``save``: a folder that also receives
+    the forecasts and the truth as parquet, for experiments on them)."""
     world = simulate(scenario, seed, n_regions)
     con = store.memory()
     load_world(con, world)
@@ -201,7 +214,12 @@ def run_scenario(scenario: str, seed: int, n_regions: int, weeks: int, settings:
                         FROM out.forecasts f JOIN out.runs r USING (run_id)
                         WHERE r.status = 'published'""").df()
     con.close()
-    sc = score_forecasts(fc, _truth_frame(world))
+    truth = _truth_frame(world)
+    if save is not None:
+        save.mkdir(parents=True, exist_ok=True)
+        fc.to_parquet(save / f"forecasts_{scenario}_{seed}.parquet")
+        truth.to_parquet(save / f"truth_{scenario}_{seed}.parquet")
+    sc = score_forecasts(fc, truth)
     sc["scenario"] = scenario
     sc["seed"] = seed
     return sc
@@ -216,9 +234,12 @@ def accuracy_table(scores: pd.DataFrame, by: list[str]) -> pd.DataFrame:
     df["region"] = df["scenario"] + "/" + df["seed"].astype(str) + "/" + df["region"]
     rel = pairwise_relative_wis(df, by=by)
     cov = df.groupby([*by, "model"]).agg(coverage_50=("covered_50", "mean"),
-                                         coverage_90=("covered_90", "mean")).reset_index()
+                                         coverage_90=("covered_90", "mean"),
+                                         cover_frac_50=("cover_frac_50", "mean"),
+                                         cover_frac_90=("cover_frac_90", "mean")).reset_index()
     return rel.merge(cov, on=[*by, "model"])[[*by, "model", "n_forecasts", "mean_wis",
-                                              "rel_wis", "coverage_50", "coverage_90"]]
+                                              "rel_wis", "coverage_50", "coverage_90",
+                                              "cover_frac_50", "cover_frac_90"]]
 
 
 def discrete_check(scores: pd.DataFrame) -> list[str]:
@@ -244,12 +265,21 @@ def print_table(tab: pd.DataFrame, title: str) -> None:
     print(f"\n{title}\n")
     shown = tab[tab["horizon_days"].isin(HORIZONS_SHOWN)]
     hs = sorted(shown["horizon_days"].unique())
-    print("| signal | model | " + " | ".join(f"h{h} rel WIS / cov50 / cov90" for h in hs) + " |")
+    tc = "cover_frac_50" in shown.columns
+    head = "rel WIS / cov50 / cov90" + (" tie-corrected (closed)" if tc else "")
+    print("| signal | model | " + " | ".join(f"h{h} {head}" for h in hs) + " |")
     print("|---|---|" + "---|" * len(hs))
+
+    def cell(g: pd.DataFrame, h: int) -> str:
+        r = g.loc[h]
+        if not tc:
+            return f"{r['rel_wis']:.2f} / {r['coverage_50']:.2f} / {r['coverage_90']:.2f}"
+        return (f"{r['rel_wis']:.2f} / {r['cover_frac_50']:.2f} ({r['coverage_50']:.2f}) / "
+                f"{r['cover_frac_90']:.2f} ({r['coverage_90']:.2f})")
+
     for (signal, model), g in shown.groupby(["signal", "model"]):
         g = g.set_index("horizon_days")
-        cells = [f"{g.at[h, 'rel_wis']:.2f} / {g.at[h, 'coverage_50']:.2f} / "
-                 f"{g.at[h, 'coverage_90']:.2f}" if h in g.index else "—" for h in hs]
+        cells = [cell(g, h) if h in g.index else "—" for h in hs]
         print(f"| {signal} | {model} | " + " | ".join(cells) + " |")
 
 
@@ -267,14 +297,19 @@ def targets(tab: pd.DataFrame) -> list[str]:
         lines.append(f"worst rel WIS of {r['model']}: {r['rel_wis']:.2f} ({r['signal']}, "
                      f"h{int(r['horizon_days'])}; target <= 1.5: "
                      f"{'met' if r['rel_wis'] <= 1.5 else 'NOT met'})")
+    kinds = [("tie-corrected", "cover_frac_50", "cover_frac_90"),
+             ("closed", "coverage_50", "coverage_90")]
     for model in sorted(m for m in tab["model"].unique() if m.startswith("ensemble")):
         e = tab[tab["model"] == model]
-        d50 = (e["coverage_50"] - 0.5).abs().max()
-        d90 = (e["coverage_90"] - 0.9).abs().max()
-        lines.append(f"{model}: coverage 50 % in [{e['coverage_50'].min():.2f}, "
-                     f"{e['coverage_50'].max():.2f}], 90 % in [{e['coverage_90'].min():.2f}, "
-                     f"{e['coverage_90'].max():.2f}] over signals × horizons (target ±0.10: "
-                     f"{'met' if max(d50, d90) <= 0.10 else 'NOT met'})")
+        for kind, c50, c90 in kinds:
+            if c50 not in e.columns:
+                continue
+            d50 = (e[c50] - 0.5).abs().max()
+            d90 = (e[c90] - 0.9).abs().max()
+            lines.append(f"{model}: {kind} coverage 50 % in [{e[c50].min():.2f}, "
+                         f"{e[c50].max():.2f}], 90 % in [{e[c90].min():.2f}, "
+                         f"{e[c90].max():.2f}] over signals × horizons (target ±0.10: "
+                         f"{'met' if max(d50, d90) <= 0.10 else 'NOT met'})")
     return lines
 
 
@@ -297,7 +332,9 @@ def run_demo(settings_path: str | None, feeds: str, say: Callable[[str], None]) 
     score(con, last, settings)
     say(f"  demo: {days} runs in {time.perf_counter() - t0:.0f} s")
     acc = con.execute("SELECT model, signal, horizon_days, n AS n_forecasts, mean_wis, rel_wis, "
-                      "coverage_50, coverage_90 FROM out.accuracy").df()
+                      "coverage_50_closed AS coverage_50, coverage_90_closed AS coverage_90, "
+                      "coverage_50 AS cover_frac_50, coverage_90 AS cover_frac_90 "
+                      "FROM out.accuracy").df()
     con.close()
     return acc
 
@@ -315,6 +352,8 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--demo", action="store_true", help="score the demo backfill instead")
     p.add_argument("--feeds", default="sample_feeds")
     p.add_argument("--out", default=None, help="write the per-forecast scores (csv)")
+    p.add_argument("--save", default=None, help="folder for the raw forecasts and truth "
+                   "(parquet, one pair per outbreak)")
     args = p.parse_args(argv)
 
     def say(msg: str) -> None:
@@ -330,7 +369,8 @@ def main(argv: list[str] | None = None) -> int:
     for scenario in args.scenarios.split(","):
         for seed in (int(s) for s in args.seeds.split(",")):
             parts.append(run_scenario(scenario, seed, args.regions, args.weeks, settings, say,
-                                      every=args.every))
+                                      every=args.every,
+                                      save=Path(args.save) if args.save else None))
     scores = pd.concat(parts, ignore_index=True)
     if args.out:
         scores.to_csv(args.out, index=False)

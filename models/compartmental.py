@@ -472,6 +472,7 @@ class CompartmentalModel:
         fraction_drift_sd: float = 0.0,
         fraction_knot_days: int = 28,
         drift_sd: float = 0.05,
+        damping_days: float | None = None,
         draw_knots: int = 2,
         n_draws: int = 500,
         optimizer: str = "scoring",
@@ -488,7 +489,9 @@ class CompartmentalModel:
         (mean, sd) in days: cases (3, 2.1; the reference date is symptom onset), admissions
         (7.5, 3.3), deaths (18.5, 7.3).  ``drift_sd`` is the sd per day of the random walk on
         log beta beyond the data (taken in steps of one knot, sd ``drift_sd`` x sqrt(knot
-        days)); ``fraction_drift_sd`` the sd of a fraction's log between knots (0: constant
+        days)); ``damping_days`` the half-life with which the last knot's R_t relaxes toward 1
+        beyond the data (log beta toward -log(infectious_days x S/N); None: held, as fitted);
+        ``fraction_drift_sd`` the sd of a fraction's log between knots (0: constant
         fractions).
         """
         self.latent_days = latent_days
@@ -508,6 +511,7 @@ class CompartmentalModel:
         self.fraction_drift_sd = fraction_drift_sd
         self.fraction_knot_days = fraction_knot_days
         self.drift_sd = drift_sd
+        self.damping_days = damping_days
         self.draw_knots = draw_knots
         self.n_draws = n_draws
         self.optimizer = optimizer
@@ -1393,19 +1397,22 @@ class CompartmentalModel:
 
         Each draw combines a Laplace draw of the parameters, a random walk on log beta beyond
         the data (one step per knot period, sd ``drift_sd`` x sqrt(knot days), from the last
-        knot) and
-        negative-binomial count noise.  ``multiplier`` (n_regions, horizon) scales transmission
+        knot, whose R_t relaxes toward 1 with half-life ``damping_days`` when set: damped trend,
+        Gardner & McKenzie 1985) and negative-binomial count noise.  ``multiplier`` (n_regions, horizon) scales transmission
         on each future day (scenarios; 1 = unchanged).  ``dispersion`` (signal -> (n_regions,))
         caps the fitted sizes of the count noise: an in-sample fit of a smooth curve can find
         the counts nearly Poisson while its forecasts meet wider errors (e.g. sizes estimated
         from one-day-ahead errors, :func:`tallywave.models.renewal_forecast.estimate_dispersion`).  Randomness: one stream per region from
         ``random_state``, rebuilt on every call.  Regions that could not be fitted get NaN.
+        Sets ``future_log_beta_`` (regions, draws, horizon): log beta beyond the data.
         """
         if not hasattr(self, "theta_"):
             raise RuntimeError("call fit() before forecasting")
         horizon = int(horizon)
         if horizon < 1:
             raise ValueError(f"horizon must be >= 1, got {horizon}")
+        if self.damping_days is not None and not float(self.damping_days) > 0.0:
+            raise ValueError(f"damping_days must be > 0 (or None), got {self.damping_days}")
         n_draws = int(self.n_draws if n_draws is None else n_draws)
         lay = self._lay
         n_reg = self.theta_.shape[0]
@@ -1415,7 +1422,14 @@ class CompartmentalModel:
         step_sd = float(self.drift_sd) * math.sqrt(lay.knot_days)  # random walk over a knot
         walk = np.cumsum(rnd.normal((n_draws, n_steps)) * step_sd, axis=2)
         step_of_day = np.arange(horizon) // lay.knot_days
-        future = theta[:, :, lay.n_knots - 1 : lay.n_knots] + walk[:, :, step_of_day]
+        last = theta[:, :, lay.n_knots - 1 : lay.n_knots]
+        if self.damping_days is not None:  # today's R_t relaxes toward 1 (module notes)
+            phi = 0.5 ** (1.0 / float(self.damping_days))
+            level = -np.log(float(self.infectious_days)
+                            * np.clip(self.susceptible_, 1e-6, 1.0))[:, None, None]
+            last = level + (last - level) * phi ** np.arange(1, horizon + 1)
+        future = last + walk[:, :, step_of_day]
+        self.future_log_beta_ = future  # (R, draws, horizon), before any scenario multiplier
         if multiplier is not None:
             m = np.broadcast_to(np.asarray(multiplier, dtype=float), (n_reg, horizon))
             if np.any(~(m >= 0)):

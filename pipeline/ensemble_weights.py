@@ -9,6 +9,7 @@ published by then whose truth had settled by then, against the data known then),
 publishes exactly the weights that would have been published on the day.  While a band has
 fewer than ``ensemble_min_scores`` common scored forecasts it borrows the weights of the nearest
 shorter band that has enough, else the members are weighted equally; ``basis`` says which.
+Parents of a region hierarchy are left out of the scores (their data are their leaves').
 
 Members are the forecasting models (``renewal``, ``compartmental``); the baseline is the
 yardstick, never a member.
@@ -23,6 +24,7 @@ import numpy as np
 import pandas as pd
 
 from tallywave.models.ensemble import inverse_score_weights
+from tallywave.pipeline.reconcile import parent_leaves
 from tallywave.pipeline.scoring import scores_as_of
 from tallywave.pipeline.settings import Settings
 
@@ -94,6 +96,8 @@ def scoreboard_weights(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings:
     window = max(int(settings.get("ensemble_window_days", sig)) for sig in members)
     scores = scores_as_of(con, as_of, settings,
                           issued_since=as_of - dt.timedelta(days=window))
+    parents = set(parent_leaves(con))  # a parent's scores repeat its leaves': not counted
+    scores = scores[~scores["region"].isin(parents)]
     parts = [signal_weights(scores, signal, mem, as_of, settings.for_signal(signal))
              for signal, mem in members.items() if mem]
     return pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=COLUMNS)

@@ -64,6 +64,7 @@ from tallywave.pipeline.frames import (
     serial_map,
 )
 from tallywave.pipeline.nowcast import nowcast_quantiles
+from tallywave.pipeline.reconcile import Reconciler, leaf_mask
 from tallywave.pipeline.scenarios import describe, multipliers, scenario_frame, write_scenarios
 from tallywave.pipeline.settings import Settings
 from tallywave.pipeline.store import insert_df
@@ -187,6 +188,7 @@ def _compartmental_job(args: tuple) -> dict[str, Any]:
         dt=1.0 / max(int(cfg["ode_steps_per_day"]), 1),
         fraction_prior_sd=dict(cfg["fraction_prior_sd"]),
         fraction_drift_sd=float(cfg["fraction_drift_sd"]), drift_sd=drift,
+        damping_days=float(cfg["compartmental_damping_days"]) or None,
         n_draws=int(cfg["forecast_draws"]), q_levels=cfg["quantiles"], random_state=seeds)
     model.fit(observed, population, init=init, prior_counts=prior, immune=immune)
     h = int(cfg["horizon_days"])
@@ -286,6 +288,7 @@ def _rt_drift(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
                   (max(value) FILTER (WHERE abs(q_level - 0.95) < 1e-9)
                    - max(value) FILTER (WHERE abs(q_level - 0.05) < 1e-9)) AS width
            FROM out.rt WHERE run_id = ? AND signal = ? AND NOT coalesce(nowcast_dependent, false)
+             AND region NOT IN (SELECT region FROM core.regions WHERE n_children > 0)
            GROUP BY region, ref_date, mean""", [run_id, signal]).df()
     if df.empty:
         return ceiling
@@ -304,18 +307,21 @@ def _rt_drift(con: duckdb.DuckDBPyConnection, run_id: str, signal: str,
                                 bounds=(min(0.005, ceiling), ceiling))
 
 
-def _noise_sizes(y: np.ndarray, cfg: dict[str, Any], step: int = 1) -> np.ndarray:
+def _noise_sizes(y: np.ndarray, cfg: dict[str, Any], step: int = 1,
+                 leaf: np.ndarray | None = None) -> np.ndarray:
     """Negative-binomial sizes of each region's count noise, from the errors of one-day-ahead
     renewal predictions over the last six weeks (regions with too few counts: the median of the
-    signal's others, all regions of the signal taken together before batching).  A weekly
-    signal: the size of weekly counts, from one-week-ahead errors over the last 10 weeks."""
+    signal's others, all regions of the signal taken together before batching; parents are not
+    counted: ``leaf``).  A weekly signal: the size of weekly counts, from one-week-ahead errors
+    over the last 10 weeks."""
     if step != 1:
         tail = y[:, -(WEEKLY_NOISE_WEEKS + 12):]
         mu = one_week_ahead_expected(tail, interval_pmfs(cfg)[0], step)
-        return estimate_dispersion(tail, window=WEEKLY_NOISE_WEEKS, skip_last=1, expected=mu)
+        return estimate_dispersion(tail, window=WEEKLY_NOISE_WEEKS, skip_last=1, expected=mu,
+                                   pool_mask=leaf)
     tail = y[:, -90:]
     mu = one_step_expected(tail, interval_pmfs(cfg)[0], int(cfg["rt_window_days"]))
-    return estimate_dispersion(tail, expected=mu)
+    return estimate_dispersion(tail, expected=mu, pool_mask=leaf)
 
 
 def _long(run_id: str, as_of: dt.date, model: str, signal: str, regions: np.ndarray,
@@ -400,7 +406,7 @@ def forecast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings,
         run.drift[signal] = _rt_drift(con, run_id, signal, settings.for_signal(signal),
                                       block.step)
         run.dispersion[signal] = _noise_sizes(corrected[signal][0], settings.for_signal(signal),
-                                              block.step)
+                                              block.step, leaf_mask(con, block.regions))
     if "compartmental" in wanted or ("renewal" in wanted and
                                      settings.get("renewal_depletion")):
         _run_compartmental(run, blocks, corrected, publish="compartmental" in wanted)
@@ -417,15 +423,18 @@ def forecast(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Settings,
             _run_renewal(run, signal, block, y, parts)
     _ensembles(run, blocks, wanted)
     n_rows = 0
+    rec = Reconciler(con, settings)  # parents: bottom-up from their leaves (pipeline/reconcile)
     for model, per_signal in run.results.items():
         for signal, q in per_signal.items():
             block = blocks[signal]
             q_out = _to_report_units(con, run_id, signal, block.regions, as_of, q, block.step)
+            q_out = rec.apply(signal, block.regions, model, q_out)
             last = None if block.step == 1 else block.dates[-1]
             n_rows += insert_df(con, "out.forecasts", _long(
                 run_id, as_of, model, signal, block.regions,
                 settings.for_signal(signal)["quantiles"], q_out, last, block.step))
-    _publish_scenarios(run, blocks)
+    _publish_scenarios(run, blocks, rec)
+    insert_df(con, "out.fits", rec.fits_frame(run_id))
     run.lines.insert(0, f"{n_rows} quantile rows for {', '.join(run.results) or 'no models'}")
     out: dict[str, Any] = {"line": "; ".join(run.lines), "rows": n_rows}
     if run.skipped:
@@ -448,7 +457,8 @@ def _run_renewal(run: _Run, signal: str, block: SeriesBlock, y: np.ndarray,
     n_draws = int(cfg["forecast_draws"])
     eventual, rep, start = nowcast_draws_for(con, run.run_id, signal, block, n_draws, seed)
     values = np.nan_to_num(block.values)
-    pooled_r = _pooled_r(values, eventual, rep, start, cfg, signal, step)
+    leaf = leaf_mask(con, block.regions)  # parents' data are their leaves': pool leaves only
+    pooled_r = _pooled_r(values[leaf], eventual[:, leaf], rep[leaf], start, cfg, signal, step)
     dispersion = run.dispersion[signal]
     capacity = run.capacity.get(signal, np.full(len(block.regions), np.nan))
     if not cfg["renewal_depletion"]:
@@ -648,7 +658,7 @@ def _ensembles(run: _Run, blocks: dict[str, SeriesBlock], wanted: list[str]) -> 
         run.lines.append("ensemble weights: " + ", ".join(f"{s} {v}" for s, v in basis.items()))
 
 
-def _publish_scenarios(run: _Run, blocks: dict[str, SeriesBlock]) -> None:
+def _publish_scenarios(run: _Run, blocks: dict[str, SeriesBlock], rec: Reconciler) -> None:
     """Scenario projections in report units → out.scenarios."""
     if not run.scenarios:
         return
@@ -660,6 +670,7 @@ def _publish_scenarios(run: _Run, blocks: dict[str, SeriesBlock]) -> None:
             cfg = run.settings.for_signal(signal)
             change = multipliers([sc], run.as_of, block.regions, q.shape[1])[0][1]
             q_out = _to_report_units(run.con, run.run_id, signal, block.regions, run.as_of, q)
+            q_out = rec.apply(signal, block.regions, f"scenario {name}", q_out)
             keep = np.ones(len(block.regions), dtype=bool) if "regions" not in sc else \
                 np.isin(block.regions.astype(object), list(sc["regions"]))  # its regions only
             frames.append(scenario_frame(run.run_id, run.as_of, name, describe(sc, run.as_of),

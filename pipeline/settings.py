@@ -119,8 +119,9 @@ SPEC: dict[str, Setting] = {
                         "ceiling of the estimate (and its value when R_t history is too short)"),
     "drift_from_rt": Setting(True, "estimate that drift from the run's R_t history, pooled over "
                              "the signal's regions"),
-    "renewal_damping_days": Setting(14.0, "renewal projection: half-life of log R_t toward 0 "
-                                    "(R toward 1) beyond the data; 0 = no damping"),
+    "renewal_damping_days": Setting(7.0, "renewal projection: half-life with which today's "
+                                    "log R_t relaxes toward 0 (R toward 1) beyond the data (the "
+                                    "drift's random walk is not damped); 0 = no damping"),
     "renewal_depletion": Setting(True, "renewal projection: deplete susceptibles, with the pool "
                                  "and the signal's reporting fraction from the compartmental fit"),
     "latent_days": Setting(3.0, "compartmental model: mean latent period (days)"),
@@ -136,6 +137,9 @@ SPEC: dict[str, Setting] = {
         "compartmental model: prior sd of each fraction on the log scale (0 = known, fixed)"),
     "fraction_drift_sd": Setting(0.2, "compartmental model: sd of a fraction's log change "
                                  "per 4 weeks (0 = constant fractions)"),
+    "compartmental_damping_days": Setting(7.0, "compartmental model: half-life with which the "
+                                          "last fitted R_t relaxes toward 1 beyond the data; "
+                                          "0 = held at its fitted value"),
     "ode_method": Setting("rk4", "compartmental model stepping", ("rk4", "euler")),
     "ode_steps_per_day": Setting(1, "compartmental model: steps per day"),
     "immune_fraction": Setting(0.0, "share of every region's population immune before the "
@@ -151,6 +155,13 @@ SPEC: dict[str, Setting] = {
     "ensemble_min_scores": Setting(30, "weighted ensemble: common scored forecasts a band needs "
                                    "before its weights leave equal"),
     "ensemble_weight_power": Setting(1.0, "weighted ensemble: weight = (mean WIS)^-power"),
+    "reconcile_parents": Setting("bottom_up", "region hierarchies: a parent's published "
+                                 "forecast of every model is the sum of its leaf regions' "
+                                 "(`bottom_up`), or its own fit to the aggregate (`own`)",
+                                 ("bottom_up", "own")),
+    "reconcile_correlation": Setting(0.5, "bottom-up parents: pairwise correlation assumed "
+                                     "between the leaves' forecast errors (1 = quantiles add "
+                                     "up, widest; 0 = independent)"),
     "scenarios": Setting([], "what-if projections: list of `{name, change, start, regions}` "
                          "(transmission × `change` from date `start`, or `after_days` from "
                          "the run date; `regions` optional); published in `out.scenarios`"),
@@ -359,9 +370,8 @@ def _check_value(key: str, value: Any, where: str) -> Any:
             raise UserError(f"{where}: {key} must be a number, got {value!r}")
         if value < 0:
             raise UserError(f"{where}: {key} must not be negative, got {value!r}")
-        if key == "immune_fraction" and value > 1:
-            raise UserError(f"{where}: immune_fraction must be a share between 0 and 1, "
-                            f"got {value!r}")
+        if key in ("immune_fraction", "reconcile_correlation") and value > 1:
+            raise UserError(f"{where}: {key} must be a share between 0 and 1, got {value!r}")
         return type(default)(value) if isinstance(default, int) and float(value).is_integer() \
             else value
     choices = SPEC[key].choices

@@ -471,6 +471,37 @@ def test_forecast_draws_continue_the_fitted_path(fitted: tuple) -> None:
     np.testing.assert_allclose(cont, whole, rtol=1e-9)
 
 
+def test_damping_relaxes_the_last_knot_toward_r_one(fitted: tuple) -> None:
+    # damped trend beyond the data (Gardner & McKenzie 1985): with no drift the log R_t implied
+    # by the future beta at today's susceptible share, log(beta x infectious days x S/N),
+    # halves every damping_days; without damping it stays at the last knot's value
+    import copy
+
+    base = copy.copy(fitted[0])
+    base.drift_sd = 0.0
+    held = copy.copy(base)
+    base.damping_days = 7.0
+    base.sample_forecast(21, n_draws=50)
+    held.sample_forecast(21, n_draws=50)
+    shift = np.log(INF * base.susceptible_)[:, None, None]
+    log_r = base.future_log_beta_ + shift
+    log_r_held = held.future_log_beta_ + shift
+    np.testing.assert_allclose(log_r_held[..., -1], log_r_held[..., 0], rtol=1e-12)
+    # day h of the forecast is h steps after the last knot: phi^h with phi = 0.5^(1/7)
+    start = log_r_held[..., 0]
+    np.testing.assert_allclose(log_r[..., 6], start * 0.5, rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(log_r[..., 20], start * 0.125, rtol=1e-9, atol=1e-12)
+    # the counts follow on the whole (not region by region: the delays and the state's
+    # transient still move the first weeks): the week-3 change of the median forecast shrinks
+    med = base.forecast(21, n_draws=50)["cases"].values[:, :, 4]
+    med_held = held.forecast(21, n_draws=50)["cases"].values[:, :, 4]
+    late = np.abs(np.log1p(med[:, -1]) - np.log1p(med[:, 13]))
+    late_held = np.abs(np.log1p(med_held[:, -1]) - np.log1p(med_held[:, 13]))
+    assert late.mean() < 0.7 * late_held.mean()
+    with pytest.raises(ValueError, match="damping_days"):
+        _model(damping_days=0.0).fit({"cases": np.ones((1, 112))}, [1e6]).sample_forecast(7)
+
+
 def test_forecast_protocol_streams_and_scenarios(truth: dict) -> None:
     from tallywave.models.base import series_seeds
 

@@ -149,3 +149,28 @@ def test_weighted_quantile_mean_matches_numpy_average() -> None:
     a, b = (np.sort(rng.gamma(2.0, 10.0, (4, 6, 9)), axis=-1) for _ in range(2))
     out = quantile_ensemble([a, b], "mean", [0.8, 0.2])
     assert np.allclose(out, np.average(np.stack([a, b]), axis=0, weights=[0.8, 0.2]))
+
+
+def test_parents_do_not_enter_the_weights() -> None:
+    # a parent's scores repeat its leaves' data: a parent whose forecasts favour the other
+    # member leaves the weights exactly as they are without it
+    con = _world(last_issue=70)
+    as_of = D0 + dt.timedelta(days=70)
+    alone = scoreboard_weights(con, as_of, _settings(), MEMBERS)
+    con.execute("INSERT INTO core.regions (region, parent, level, n_children) "
+                "VALUES ('Orvane', 'Realm', 1, 0), ('Tessaly', 'Realm', 1, 0), "
+                "('Realm', NULL, 0, 2)")
+    con.execute("INSERT INTO core.observations SELECT 'Realm', signal, ref_date, as_of, "
+                "sum(value), NULL FROM core.observations GROUP BY ALL")
+    # the parent: the poor member is perfect there and the perfect one 3x too high
+    con.execute("""INSERT INTO out.forecasts
+                   SELECT run_id, issued_on, CASE model WHEN 'renewal' THEN 'compartmental'
+                          ELSE 'renewal' END, 'Realm', signal, target_date, horizon_days,
+                          q_level, value * CASE model WHEN 'renewal' THEN 2.0 ELSE 6.0 END
+                   FROM out.forecasts WHERE region = 'Orvane'""")
+    counted = scoreboard_weights(con, as_of, _settings(), MEMBERS)
+    pd.testing.assert_frame_equal(counted, alone)
+    # ... while counting it would have moved them (the check above is not vacuous)
+    con.execute("UPDATE core.regions SET parent = NULL, n_children = 0")
+    moved = scoreboard_weights(con, as_of, _settings(), MEMBERS)
+    assert not np.allclose(moved["weight"], alone["weight"])

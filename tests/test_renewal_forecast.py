@@ -92,6 +92,29 @@ def test_damping_relaxes_log_r_toward_zero() -> None:
     assert free.expected_[0, 0, -1] > 3 * fc.expected_[0, 0, -1]
 
 
+def test_damping_of_today_and_undamped_drift_closed_forms() -> None:
+    # log R_{T+h} = phi^h log R_T + W_h: the mean relaxes as the damped trend (Gardner &
+    # McKenzie 1985) while the random walk W keeps sd sigma sqrt(h); with damp_drift the steps
+    # are damped too (an AR(1): sd sigma sqrt((1 - phi^2h) / (1 - phi^2)), closed form)
+    hist = np.full((1, 30), 100.0)
+    r0 = np.full((4000, 1), 1.5)
+    sigma, half = 0.04, 7.0
+    phi = 0.5 ** (1.0 / half)
+    h = np.arange(1, 29)
+    free = RenewalForecaster(horizon=28, log_r_sd=sigma, damping_days=half, random_state=2)
+    free.fit(hist, PMF, r0).sample()
+    log_r = np.log(free.r_paths_[:, 0])
+    np.testing.assert_allclose(log_r.mean(axis=0), np.log(1.5) * phi ** h, atol=0.004)
+    np.testing.assert_allclose(log_r.std(axis=0), sigma * np.sqrt(h), rtol=0.05)
+    ar1 = RenewalForecaster(horizon=28, log_r_sd=sigma, damping_days=half, damp_drift=True,
+                            random_state=2)
+    ar1.fit(hist, PMF, r0).sample()
+    sd = np.log(ar1.r_paths_[:, 0]).std(axis=0)
+    np.testing.assert_allclose(sd, sigma * np.sqrt((1 - phi ** (2 * h)) / (1 - phi ** 2)),
+                               rtol=0.05)
+    assert sd[-1] < 0.6 * log_r.std(axis=0)[-1]  # the AR(1) caps the spread
+
+
 def test_depletion_reaches_the_kermack_mckendrick_final_size() -> None:
     # a small seed in a large pool: with R scaled by the share of the pool left, the cumulative
     # projection approaches the final size z = 1 + W(-R0 e^-R0) / R0 (Kermack & McKendrick
