@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import datetime as dt
 import json
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -201,3 +202,37 @@ def test_leaves_do_not_see_their_parents() -> None:
     tree = tree[~tree["region"].isin(["North", "South", "Whole"])].reset_index(drop=True)
     assert len(tree) == len(flat)
     np.testing.assert_allclose(tree["value"], flat["value"], rtol=1e-9, atol=1e-9)
+
+
+def test_weekly_signals_with_a_hierarchy_are_reconciled_by_week(tmp_path: Path) -> None:
+    """A weekly feed with two provinces over six districts: every model's parent forecasts are
+    published on the same week dates as the leaves', with the parent median exactly the sum of
+    the leaves' medians, and one out.fits note per parent × signal."""
+    from benchmarks.weekly_scenario import write_weekly_feed
+    from tallywave.pipeline.ingest import ingest_spec
+
+    world = write_weekly_feed(tmp_path, n_regions=6)
+    regions = pd.read_csv(tmp_path / "regions.csv")
+    regions["province"] = ["North"] * 3 + ["South"] * 3
+    regions.to_csv(tmp_path / "regions.csv", index=False)
+    world.spec.write_text(world.spec.read_text().replace(
+        'population = "population" }', 'population = "population", parent = "province" }'))
+    con = store.memory()
+    ingest_spec(con, world.spec)
+    rid = execute_run(con, world.as_of[-5], Settings(), score_after=False)["run_id"]
+    gap = con.execute("""
+        WITH f AS (SELECT f.*, r.parent FROM out.forecasts f JOIN core.regions r USING (region)
+                   WHERE run_id = ? AND abs(q_level - 0.5) < 1e-9)
+        SELECT count(*), max(abs(p.value - s.total)), count(DISTINCT p.model),
+               min(dayofweek(p.target_date)), max(dayofweek(p.target_date))
+        FROM f p JOIN (SELECT parent, model, signal, target_date, sum(value) AS total FROM f
+                       WHERE parent IS NOT NULL GROUP BY ALL) s
+          ON s.parent = p.region AND s.model = p.model AND s.signal = p.signal
+         AND s.target_date = p.target_date""", [rid]).fetchall()[0]
+    n, worst, n_models, dow_lo, dow_hi = gap
+    assert n == 2 * 2 * n_models * 4 and n_models >= 3   # 2 parents × 2 signals × 4 weeks
+    assert worst < 1e-9
+    assert dow_lo == dow_hi                               # week dates: one weekday
+    notes = con.execute("SELECT count(*) FROM out.fits WHERE run_id = ? AND model = 'reconciled'",
+                        [rid]).fetchone()[0]
+    assert notes == 4
