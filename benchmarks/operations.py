@@ -10,6 +10,10 @@ file size after each tenth run without any retention, then after ``tallywave pru
 default retention (without and with ``--compact``; and with 7 days), and with ``prune_after_run``
 on from the start.
 
+``python -m benchmarks.operations scoring [--regions 200] [--runs 40]`` makes the same daily
+runs without scoring, then scores after each one (as ``tallywave run`` does) and times the
+incremental scoring stage against a full recomputation of every score on the same database.
+
 Speed is never asserted in tests; the figures go to the README ("Performance", "Operations").
 """
 
@@ -175,10 +179,43 @@ def bench_storage(args: argparse.Namespace) -> dict[str, Any]:
     return out
 
 
+# ----------------------------------------------------------------------------------- scoring
+
+def bench_scoring(args: argparse.Namespace) -> dict[str, Any]:
+    """Daily runs; after each, time incremental scoring and (every 10th) a full re-scoring."""
+    from tallywave.pipeline.scoring import score
+
+    tmp = Path(tempfile.mkdtemp(prefix="tw-scoring-", dir=args.out))
+    base, settings, dates = build(tmp, regions=args.regions, days=args.days or 365,
+                                  snapshots=args.snapshots or args.runs + 10, window=35,
+                                  runs=args.runs)
+    s = load_settings(settings)
+    con = store.connect(base)
+    rows: list[dict[str, Any]] = []
+    try:
+        for k, day in enumerate(dates, start=1):
+            execute_run(con, day, s, score_after=False)
+            t, c = time.perf_counter(), _cpu()
+            res = score(con, day, s)
+            row = {"run": k, "scores": res["rows"], "new": res.get("new_rows", res["rows"]),
+                   "incremental_s": time.perf_counter() - t, "incremental_cpu": _cpu() - c}
+            if k % 10 == 0 or k == len(dates):
+                t, c = time.perf_counter(), _cpu()
+                score(con, day, s, full=True)
+                row |= {"full_s": time.perf_counter() - t, "full_cpu": _cpu() - c}
+                print(f"run {k}: {row}", file=sys.stderr)
+            rows.append(row)
+    finally:
+        con.close()
+        if not args.keep:
+            shutil.rmtree(tmp, ignore_errors=True)
+    return {"regions": args.regions, "runs": args.runs, "rows": rows}
+
+
 # ------------------------------------------------------------------------------------ main
 
 def main(argv: list[str] | None = None) -> int:
-    """Command line: ``report`` or ``storage`` (see the module docstring)."""
+    """Command line: ``report``, ``storage`` or ``scoring`` (see the module docstring)."""
     ap = argparse.ArgumentParser(prog="python -m benchmarks.operations",
                                  description=__doc__.splitlines()[0])
     sub = ap.add_subparsers(dest="what", required=True)
@@ -198,7 +235,12 @@ def main(argv: list[str] | None = None) -> int:
     s.add_argument("--policies", default="none,prune_after_run",
                    help="none (no retention; then prune the copies at the end) and/or "
                         "prune_after_run, comma-separated")
-    for p in (r, s):
+    c = sub.add_parser("scoring")
+    c.add_argument("--regions", type=int, default=200)
+    c.add_argument("--runs", type=int, default=40)
+    c.add_argument("--days", type=int)
+    c.add_argument("--snapshots", type=int)
+    for p in (r, s, c):
         p.add_argument("--out", help="folder for temporary files (default: system temp)")
         p.add_argument("--keep", action="store_true", help="keep the temporary folder")
     args = ap.parse_args(argv)
@@ -209,6 +251,16 @@ def main(argv: list[str] | None = None) -> int:
               f"{res['report_kb']:.0f} kB; wall s {[round(w, 2) for w in res['wall_s']]} "
               f"(median {res['median_wall_s']:.2f}), CPU s "
               f"{[round(c, 2) for c in res['cpu_s']]}")
+    elif args.what == "scoring":
+        res = bench_scoring(args)
+        print(f"scoring, {res['regions']} regions, {res['runs']} daily runs "
+              "(wall / CPU s of the scoring stage after each run)")
+        for row in res["rows"]:
+            if "full_s" in row:
+                print(f"  after run {row['run']:3d}: {row['scores']:>9,} scores, "
+                      f"{row['new']:>8,} computed: incremental {row['incremental_s']:.2f} / "
+                      f"{row['incremental_cpu']:.2f} s; full {row['full_s']:.2f} / "
+                      f"{row['full_cpu']:.2f} s")
     else:
         if args.keep_days is None:
             args.keep_days = int(load_settings(None).get("retention_days"))

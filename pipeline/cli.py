@@ -136,6 +136,8 @@ def build_parser() -> argparse.ArgumentParser:
     sc = sub.add_parser("score", help="score every published forecast against the data now known")
     sc.add_argument("--as-of", type=_date, default=None, help="truth known on (default latest)")
     sc.add_argument("--settings")
+    sc.add_argument("--full", action="store_true",
+                    help="recompute every score (the default keeps the unchanged ones: same table)")
 
     q = sub.add_parser("sql", help="run a read-only SQL query and print the result")
     q.add_argument("query")
@@ -271,7 +273,7 @@ def cmd_score(args: argparse.Namespace) -> int:
     from tallywave.pipeline.settings import load_settings
 
     con = store.connect(args.db)
-    summary = score(con, args.as_of, load_settings(args.settings))
+    summary = score(con, args.as_of, load_settings(args.settings), full=args.full)
     print(summary["line"])
     return 0
 

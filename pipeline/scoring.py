@@ -11,8 +11,10 @@ signal's delay distribution published by that run (``out.delay_signal``), at mos
 ``settle_max_days``; else ``settle_days`` (``out.scores.settle_days`` records it).  A weekly
 signal is scored by week (truth and targets on its week dates) and its settle horizon is rounded
 up to whole weeks.  Scores are a pure function of (published forecasts,
-data known on the scoring date): each call recomputes them all in one transaction, so a revised
-truth is re-scored and ``truth_as_of`` says which data scored each row.  Mathematics:
+data known on the scoring date): each call brings the table to that function in one transaction
+— scores whose forecast and truth are unchanged are kept, revised truths and newly settled
+targets are (re-)scored (:func:`score`; ``full=True`` recomputes everything, with the same
+result) — and ``truth_as_of`` says which data the row stands for.  Mathematics:
 :mod:`tallywave.models.scores`; its SQL: :mod:`tallywave.pipeline.scores_sql`.
 """
 
@@ -25,6 +27,7 @@ from typing import Any
 import duckdb
 import pandas as pd
 
+from tallywave.models.scores import FORECAST_KEY, LEVEL_TOL
 from tallywave.pipeline.frames import WEEK
 from tallywave.pipeline.scores_sql import score_sql
 from tallywave.pipeline.settings import Settings
@@ -72,11 +75,12 @@ def settle_horizons(con: duckdb.DuckDBPyConnection, run_id: str | None,
 
 
 def _stage_scoring_inputs(con: duckdb.DuckDBPyConnection, as_of: dt.date,
-                          settings: Settings, issued_since: dt.date | None = None
-                          ) -> dict[str, int]:
+                          settings: Settings, issued_since: dt.date | None = None,
+                          forecasts: bool = True) -> dict[str, int]:
     """Temp tables ``_settle`` (signal, settle_days), ``_truth`` (settled truth known on
-    ``as_of``: cleaned and raw) and ``_published`` (published forecasts issued by then whose
-    target has settled); returns the settle horizon per signal."""
+    ``as_of``: cleaned and raw), ``_wanted`` (one row per published forecast issued by then
+    whose target has settled) and, with ``forecasts``, ``_published`` (all their quantile rows);
+    returns the settle horizon per signal."""
     since = issued_since or dt.date(1, 1, 1)  # default: every published forecast
     run_id = truth_run(con, as_of)
     settle = settle_horizons(con, run_id, settings)
@@ -103,18 +107,35 @@ def _stage_scoring_inputs(con: duckdb.DuckDBPyConnection, as_of: dt.date,
            FROM raw r JOIN _settle s USING (signal)
            LEFT JOIN repair c USING (region, signal, target_date)""",
         [as_of, as_of, since, run_id, run_id])
-    con.execute(
-        "CREATE OR REPLACE TEMP TABLE _published AS "
-        "SELECT f.* FROM out.forecasts f JOIN out.runs r USING (run_id) "
-        "JOIN _settle s ON s.signal = f.signal "
-        "WHERE r.status = 'published' AND f.issued_on <= ? AND f.issued_on >= ? "
-        "AND f.target_date <= ?::DATE - s.settle_days",
-        [as_of, since, as_of])
+    settled = ("FROM out.forecasts f JOIN out.runs r USING (run_id) "
+               "JOIN _settle s ON s.signal = f.signal "
+               "WHERE r.status = 'published' AND f.issued_on <= ? AND f.issued_on >= ? "
+               "AND f.target_date <= ?::DATE - s.settle_days")
+    # one row per forecast (a forecast without a median row is never scored: levels_ok)
+    con.execute("CREATE OR REPLACE TEMP TABLE _wanted AS SELECT f.run_id, "
+                + ", ".join(f"f.{c}" for c in FORECAST_KEY)
+                + f" {settled} AND abs(f.q_level - 0.5) <= {LEVEL_TOL!r}",
+                [as_of, since, as_of])
+    if forecasts:
+        con.execute(f"CREATE OR REPLACE TEMP TABLE _published AS SELECT f.* {settled}",
+                    [as_of, since, as_of])
     return settle
 
 
+def _stage_unscored(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> None:
+    """``_published``: the quantile rows of the wanted forecasts ``out.scores`` lacks."""
+    key = ", ".join(("run_id", *FORECAST_KEY))
+    con.execute(
+        f"""CREATE OR REPLACE TEMP TABLE _todo AS
+            SELECT {key} FROM _wanted SEMI JOIN _truth USING (region, signal, target_date)
+            EXCEPT SELECT {key} FROM out.scores""")
+    con.execute(f"CREATE OR REPLACE TEMP TABLE _published AS "
+                f"SELECT f.* FROM out.forecasts f SEMI JOIN _todo t USING ({key}) "
+                f"WHERE f.issued_on <= ?", [as_of])
+
+
 def _drop_inputs(con: duckdb.DuckDBPyConnection) -> None:
-    for name in ("_truth", "_published", "_settle"):
+    for name in ("_truth", "_published", "_settle", "_wanted", "_todo"):
         con.execute(f"DROP TABLE IF EXISTS {name}")
 
 
@@ -140,25 +161,59 @@ def scores_as_of(con: duckdb.DuckDBPyConnection, as_of: dt.date, settings: Setti
         _drop_inputs(con)
 
 
-def score(con: duckdb.DuckDBPyConnection, as_of: dt.date | None, settings: Settings
-          ) -> dict[str, Any]:
-    """Re-score all published forecasts against the truth known on ``as_of`` (default: latest)."""
+def score(con: duckdb.DuckDBPyConnection, as_of: dt.date | None, settings: Settings,
+          full: bool = False) -> dict[str, Any]:
+    """Bring ``out.scores`` to the scores of all published forecasts against the truth known on
+    ``as_of`` (default: latest).
+
+    Incremental: a stored score is kept when its forecast is still published and settled and
+    its target's truth (cleaned and raw) and settle horizon are unchanged — the score is then
+    the same number a recomputation would give, and only its bookkeeping (``truth_as_of``,
+    ``truth_run_id``) is brought up to date.  Every other row is deleted and every missing one
+    computed, so the table equals a full recomputation (``full=True``; tested) while a daily run
+    scores only the newly settled and the revised targets."""
     if as_of is None:
         as_of = con.execute("SELECT max(as_of) FROM core.observations").fetchall()[0][0]
         if as_of is None:
             return {"line": "nothing to score (no observations)", "rows": 0}
     with transaction(con):
-        settle = _stage_scoring_inputs(con, as_of, settings)
-        con.execute("DELETE FROM out.scores")
+        settle = _stage_scoring_inputs(con, as_of, settings, forecasts=False)
+        if full:
+            con.execute("DELETE FROM out.scores")
+        else:
+            _drop_stale_scores(con, as_of)
+        kept = con.execute("SELECT count(*) FROM out.scores").fetchall()[0][0]
+        _stage_unscored(con, as_of)
         cols = ", ".join(SCORE_COLUMNS)
         con.execute(f"INSERT INTO out.scores ({cols}, scored_at) "
                     f"SELECT *, now() FROM ({_scores_select()})", [as_of])
         con.execute("""UPDATE out.scores s SET run_id = p.run_id FROM (
                            SELECT DISTINCT run_id, issued_on FROM _published) p
-                       WHERE s.issued_on = p.issued_on""")
+                       WHERE s.issued_on = p.issued_on AND s.run_id IS NULL""")
         n = con.execute("SELECT count(*) FROM out.scores").fetchall()[0][0]
         _drop_inputs(con)
     horizons = ", ".join(f"{s} {d} d" for s, d in sorted(settle.items()))
-    return {"line": f"{n} forecasts scored against data known on {as_of} "
+    new = f"; {n - kept} newly scored, {kept} unchanged" if kept else ""
+    return {"line": f"{n} forecasts scored against data known on {as_of}{new} "
                     f"(settled after: {horizons or 'nothing to score'})", "rows": int(n),
-            "truth_as_of": as_of}
+            "truth_as_of": as_of, "new_rows": int(n - kept)}
+
+
+def _drop_stale_scores(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> None:
+    """Delete the stored scores a recomputation on ``as_of`` would change or not produce: the
+    forecast is no longer published and settled (``_wanted``), or its target's truth or settle
+    horizon differs from ``_truth``; refresh the bookkeeping of the rest."""
+    con.execute(
+        """DELETE FROM out.scores s WHERE NOT EXISTS (
+               SELECT 1 FROM _wanted w JOIN _truth t USING (region, signal, target_date)
+               WHERE w.run_id = s.run_id AND w.issued_on = s.issued_on AND w.model = s.model
+                 AND w.region = s.region AND w.signal = s.signal
+                 AND w.target_date = s.target_date AND w.horizon_days = s.horizon_days
+                 AND t.truth = s.truth AND t.truth_raw IS NOT DISTINCT FROM s.truth_raw
+                 AND t.settle_days IS NOT DISTINCT FROM s.settle_days)""")
+    con.execute(
+        """UPDATE out.scores s SET truth_as_of = ?::DATE, truth_run_id = t.truth_run_id
+           FROM _truth t
+           WHERE t.region = s.region AND t.signal = s.signal AND t.target_date = s.target_date
+             AND (s.truth_as_of IS DISTINCT FROM ?::DATE
+                  OR s.truth_run_id IS DISTINCT FROM t.truth_run_id)""", [as_of, as_of])
