@@ -498,8 +498,11 @@ def _panel_counts(ax: Any, s: SeriesData) -> None:
     ys: list[Any] = []
     if s.reported is not None and _has_reported(s):
         x, y = s.reported["ref_date"].to_numpy(), s.reported["value_reported"].to_numpy(float)
-        # one LineCollection instead of a bar patch per day (much faster to draw)
-        ax.vlines(x, 0, y, color=REPORTED_COLOUR, lw=2.6)
+        # one LineCollection instead of a bar patch per day (much faster to draw); weekly
+        # counts get bars about as wide as five days' (a week's bar, leaving a gap)
+        step = float(np.median(np.diff(x).astype("timedelta64[D]").astype(float))) \
+            if len(x) > 1 else 1.0
+        ax.vlines(x, 0, y, color=REPORTED_COLOUR, lw=2.6 * min(max(step, 1.0), 5.0))
         xs.append(x)
         ys.append(y)
     if s.nowcast is not None:
