@@ -236,3 +236,78 @@ def test_line_list_in_jsonl_and_parquet(tmp_path: Path, fmt: str) -> None:
     assert [f.status for f in s.files] == ["accepted"]
     assert known(con, day(3)) == {("North", "cases", 1): 1.0, ("South", "cases", 2): 1.0}
     assert known(con, day(4)) == {("North", "cases", 1): 2.0, ("South", "cases", 2): 1.0}
+
+
+def test_cli_line_list_with_a_hierarchy_runs_and_reports(prefect_server, tmp_path: Path) -> None:
+    """``tallywave ingest`` + ``run`` (the Prefect flow) + ``report`` on a line list of four
+    sites under two provinces and a nation (a two-level tree): the run publishes nowcasts, R_t
+    and forecasts for every site and parent, the parents' forecasts are bottom-up from their
+    sites, and the report draws every region.  The events are simulated (growing Poisson
+    counts, known multinomial reporting delays), so the last nowcast's median must also sit
+    closer to the eventual counts than the reported ones do."""
+    from tallywave.pipeline.cli import main
+
+    rng = np.random.default_rng(42)
+    pmf = np.array([0.20, 0.25, 0.20, 0.12, 0.09, 0.06, 0.04, 0.02, 0.02])
+    sites = {"Fenwick": "Upland", "Gorsey": "Upland", "Hollin": "Lowmere", "Ivel": "Lowmere"}
+    start, n_days = np.datetime64("2026-01-01"), 100
+    rows = []
+    for k, site in enumerate(sites):
+        level = 25.0 * (1 + k) * np.exp(0.012 * np.arange(n_days))
+        for t, c in enumerate(rng.poisson(level)):
+            rows += [(site, t, t + int(d)) for d in rng.choice(len(pmf), size=c, p=pmf)]
+    df = pd.DataFrame(rows, columns=["site", "t", "rep"])
+    df["onset"] = (start + df["t"].to_numpy()).astype(str)
+    df["reported"] = (start + df["rep"].to_numpy()).astype(str)
+    as_of = D(2026, 1, 1) + dt.timedelta(days=n_days - 1)
+    seen = df[df["rep"] <= n_days - 1]
+    (tmp_path / "list").mkdir()
+    seen[["site", "onset", "reported"]].to_csv(tmp_path / "list" / "all.csv", index=False)
+    (tmp_path / "regions.csv").write_text("site,province\n" + "".join(
+        f"{s},{p}\n" for s, p in sites.items()) + "Upland,Realm\nLowmere,Realm\n")
+    (tmp_path / "feeds.toml").write_text(textwrap.dedent("""\
+        [source.ll]
+        path = "list/*.csv"
+        format = "csv"
+        signal = "cases"
+        value_kind = "records"
+        columns = { region = "site", ref_date = "onset", reported_on = "reported" }
+
+        [regions]
+        path = "regions.csv"
+        columns = { region = "site", parent = "province" }
+        """))
+    (tmp_path / "s.toml").write_text(
+        '[defaults]\nforecast_draws = 150\nnowcast_draws = 150\n'
+        'models = ["baseline", "renewal"]\n')
+    db = str(tmp_path / "ll.duckdb")
+    assert main(["--db", db, "ingest", str(tmp_path / "feeds.toml")]) == 0
+    assert main(["--db", db, "run", "--as-of", as_of.isoformat(), "--settings",
+                 str(tmp_path / "s.toml"), "--no-report"]) == 0
+    out = tmp_path / "reports"
+    assert main(["--db", db, "report", "--as-of", as_of.isoformat(), "--out", str(out)]) == 0
+    con = store.connect(Path(db), read_only=True)
+    try:
+        assert con.execute("SELECT status FROM out.runs").fetchall() == [("published",)]
+        everyone = set(sites) | {"Upland", "Lowmere", "Realm"}
+        for table in ("out.nowcast", "out.rt", "out.forecasts"):
+            got = {r[0] for r in con.execute(f"SELECT DISTINCT region FROM {table}").fetchall()}
+            assert got == everyone, table
+        notes = con.execute("SELECT region, message FROM out.fits WHERE model = 'reconciled'"
+                            ).fetchall()
+        assert {r for r, _ in notes} == {"Upland", "Lowmere", "Realm"}
+        assert all("bottom-up" in m and "renewal" in m for _, m in notes)
+        # the nowcast of the last 5 days against the eventual counts of the simulated events
+        nc = con.execute("SELECT region, ref_date, value FROM out.nowcast WHERE q_level = 0.5 "
+                         "AND region IN ('Fenwick', 'Gorsey', 'Hollin', 'Ivel') AND "
+                         "ref_date > ?::DATE - 5", [as_of]).df()
+    finally:
+        con.close()
+    nc["ref_date"] = pd.to_datetime(nc["ref_date"]).dt.strftime("%Y-%m-%d")
+    eventual = df.groupby(["site", "onset"]).size()
+    reported = seen.groupby(["site", "onset"]).size()
+    keys = list(zip(nc["region"], nc["ref_date"], strict=True))
+    truth = np.array([eventual.get(k, 0) for k in keys], dtype=float)
+    raw = np.array([reported.get(k, 0) for k in keys], dtype=float)
+    assert np.abs(nc["value"].to_numpy() - truth).mean() < 0.5 * np.abs(raw - truth).mean()
+    assert len(list(out.glob("*/figures/*.png"))) == len(everyone)
