@@ -316,7 +316,8 @@ def targets(tab: pd.DataFrame) -> list[str]:
 # ----------------------------------------------------------------------------- demo
 
 def run_demo(settings_path: str | None, feeds: str, say: Callable[[str], None]) -> pd.DataFrame:
-    """The demo's backfill (21 as-of dates) on ``sample_feeds/``, scored by the pipeline."""
+    """The demo's backfill (21 as-of dates) and today's run on ``sample_feeds/``, scored by the
+    pipeline: the same scores ``tallywave demo`` prints."""
     from tallywave.pipeline.ingest import ingest_spec
     from tallywave.pipeline.scoring import score
 
@@ -329,6 +330,8 @@ def run_demo(settings_path: str | None, feeds: str, say: Callable[[str], None]) 
     t0 = time.perf_counter()
     for k in range(days):
         execute_run(con, start + dt.timedelta(days=k), settings, score_after=False)
+    # and "today", as the demo does: its cleaning is the truth the scores use
+    execute_run(con, last, settings, score_after=False)
     score(con, last, settings)
     say(f"  demo: {days} runs in {time.perf_counter() - t0:.0f} s")
     acc = con.execute("SELECT model, signal, horizon_days, n AS n_forecasts, mean_wis, rel_wis, "

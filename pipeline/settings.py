@@ -137,7 +137,7 @@ SPEC: dict[str, Setting] = {
         "compartmental model: prior sd of each fraction on the log scale (0 = known, fixed)"),
     "fraction_drift_sd": Setting(0.2, "compartmental model: sd of a fraction's log change "
                                  "per 4 weeks (0 = constant fractions)"),
-    "compartmental_damping_days": Setting(7.0, "compartmental model: half-life with which the "
+    "compartmental_damping_days": Setting(14.0, "compartmental model: half-life with which the "
                                           "last fitted R_t relaxes toward 1 beyond the data; "
                                           "0 = held at its fitted value"),
     "ode_method": Setting("rk4", "compartmental model stepping", ("rk4", "euler")),
