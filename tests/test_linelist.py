@@ -63,6 +63,38 @@ def known(con, as_of: dt.date) -> dict[tuple[str, str, int], float]:
                 strict=True)}
 
 
+def simulated_list(rng: np.random.Generator, pmf: np.ndarray,
+                   levels: dict[str, np.ndarray]) -> pd.DataFrame:
+    """One record per simulated event from 2026-01-01: Poisson counts per day at
+    ``levels[site]``, each reported after a delay drawn from ``pmf`` (multinomial delays).
+    Columns: site, t, rep (day numbers), onset, reported (ISO dates)."""
+    rows = []
+    for site, level in levels.items():
+        for t, c in enumerate(rng.poisson(level)):
+            rows += [(site, t, t + int(d)) for d in rng.choice(len(pmf), size=c, p=pmf)]
+    start = np.datetime64("2026-01-01")
+    df = pd.DataFrame(rows, columns=["site", "t", "rep"])
+    df["onset"] = (start + df["t"].to_numpy()).astype(str)
+    df["reported"] = (start + df["rep"].to_numpy()).astype(str)
+    return df
+
+
+def write_simulated_list(folder: Path, records: pd.DataFrame, extra: str = "") -> Path:
+    """``records`` as one line list ``folder/list/all.csv`` (no as_of) and its spec."""
+    (folder / "list").mkdir()
+    records[["site", "onset", "reported"]].to_csv(folder / "list" / "all.csv", index=False)
+    path = folder / "feeds.toml"
+    path.write_text(textwrap.dedent("""\
+        [source.ll]
+        path = "list/*.csv"
+        format = "csv"
+        signal = "cases"
+        value_kind = "records"
+        columns = { region = "site", ref_date = "onset", reported_on = "reported" }
+        """) + extra)
+    return path
+
+
 def test_each_record_enters_on_its_reported_on_date(tmp_path: Path) -> None:
     """By hand: North/cases onset 1 reported on 2, 3, 3 and 6 → known 1 on day 2, 3 on day 3
     (two more), 4 from day 6; the file's as_of (day 6) bounds what it may contain."""
@@ -162,27 +194,9 @@ def test_line_list_triangle_recovers_known_delay_pmf(tmp_path: Path) -> None:
     truth; the binomial standard error sqrt(p(1-p)/n) is textbook, from memory.)"""
     rng = np.random.default_rng(15)
     pmf = np.array([0.30, 0.25, 0.18, 0.12, 0.08, 0.04, 0.03])
-    n_days, regions = 40, ["Alder", "Birch"]
-    rows = []
-    for r in regions:
-        counts = rng.poisson(60, n_days)
-        for t, c in enumerate(counts):
-            delays = rng.choice(len(pmf), size=c, p=pmf)
-            rows += [(r, t, t + int(d)) for d in delays]
-    start = np.datetime64("2026-01-01")
-    df = pd.DataFrame(rows, columns=["site", "t", "rep"])
-    df["onset"] = (start + df["t"].to_numpy()).astype(str)
-    df["reported"] = (start + df["rep"].to_numpy()).astype(str)
-    (tmp_path / "list").mkdir()
-    df[["site", "onset", "reported"]].to_csv(tmp_path / "list" / "all.csv", index=False)
-    (tmp_path / "feeds.toml").write_text(textwrap.dedent("""\
-        [source.ll]
-        path = "list/*.csv"
-        format = "csv"
-        signal = "cases"
-        value_kind = "records"
-        columns = { region = "site", ref_date = "onset", reported_on = "reported" }
-        """))
+    n_days = 40
+    df = simulated_list(rng, pmf, {r: np.full(n_days, 60.0) for r in ("Alder", "Birch")})
+    write_simulated_list(tmp_path, df)
     con = store.memory()
     ingest_spec(con, tmp_path / "feeds.toml")
     # cells[d] = (value known at ref+d) - (value known at ref+d-1), summed over complete rows
@@ -250,29 +264,14 @@ def test_cli_line_list_with_a_hierarchy_runs_and_reports(prefect_server, tmp_pat
     rng = np.random.default_rng(42)
     pmf = np.array([0.20, 0.25, 0.20, 0.12, 0.09, 0.06, 0.04, 0.02, 0.02])
     sites = {"Fenwick": "Upland", "Gorsey": "Upland", "Hollin": "Lowmere", "Ivel": "Lowmere"}
-    start, n_days = np.datetime64("2026-01-01"), 100
-    rows = []
-    for k, site in enumerate(sites):
-        level = 25.0 * (1 + k) * np.exp(0.012 * np.arange(n_days))
-        for t, c in enumerate(rng.poisson(level)):
-            rows += [(site, t, t + int(d)) for d in rng.choice(len(pmf), size=c, p=pmf)]
-    df = pd.DataFrame(rows, columns=["site", "t", "rep"])
-    df["onset"] = (start + df["t"].to_numpy()).astype(str)
-    df["reported"] = (start + df["rep"].to_numpy()).astype(str)
+    n_days = 100
+    df = simulated_list(rng, pmf, {site: 25.0 * (1 + k) * np.exp(0.012 * np.arange(n_days))
+                                   for k, site in enumerate(sites)})
     as_of = D(2026, 1, 1) + dt.timedelta(days=n_days - 1)
     seen = df[df["rep"] <= n_days - 1]
-    (tmp_path / "list").mkdir()
-    seen[["site", "onset", "reported"]].to_csv(tmp_path / "list" / "all.csv", index=False)
     (tmp_path / "regions.csv").write_text("site,province\n" + "".join(
         f"{s},{p}\n" for s, p in sites.items()) + "Upland,Realm\nLowmere,Realm\n")
-    (tmp_path / "feeds.toml").write_text(textwrap.dedent("""\
-        [source.ll]
-        path = "list/*.csv"
-        format = "csv"
-        signal = "cases"
-        value_kind = "records"
-        columns = { region = "site", ref_date = "onset", reported_on = "reported" }
-
+    write_simulated_list(tmp_path, seen, textwrap.dedent("""
         [regions]
         path = "regions.csv"
         columns = { region = "site", parent = "province" }
