@@ -78,9 +78,9 @@ def _stage_scoring_inputs(con: duckdb.DuckDBPyConnection, as_of: dt.date,
                           settings: Settings, issued_since: dt.date | None = None,
                           forecasts: bool = True) -> dict[str, int]:
     """Temp tables ``_settle`` (signal, settle_days), ``_truth`` (settled truth known on
-    ``as_of``: cleaned and raw), ``_wanted`` (one row per published forecast issued by then
-    whose target has settled) and, with ``forecasts``, ``_published`` (all their quantile rows);
-    returns the settle horizon per signal."""
+    ``as_of``: cleaned and raw) and ``_published`` (the quantile rows of the published
+    forecasts issued by then whose target has settled) or, without ``forecasts``, ``_wanted``
+    (one row per such forecast); returns the settle horizon per signal."""
     since = issued_since or dt.date(1, 1, 1)  # default: every published forecast
     run_id = truth_run(con, as_of)
     settle = settle_horizons(con, run_id, settings)
@@ -111,13 +111,13 @@ def _stage_scoring_inputs(con: duckdb.DuckDBPyConnection, as_of: dt.date,
                "JOIN _settle s ON s.signal = f.signal "
                "WHERE r.status = 'published' AND f.issued_on <= ? AND f.issued_on >= ? "
                "AND f.target_date <= ?::DATE - s.settle_days")
-    # one row per forecast (a forecast without a median row is never scored: levels_ok)
-    con.execute("CREATE OR REPLACE TEMP TABLE _wanted AS SELECT f.run_id, "
-                + ", ".join(f"f.{c}" for c in FORECAST_KEY)
-                + f" {settled} AND abs(f.q_level - 0.5) <= {LEVEL_TOL!r}",
-                [as_of, since, as_of])
     if forecasts:
         con.execute(f"CREATE OR REPLACE TEMP TABLE _published AS SELECT f.* {settled}",
+                    [as_of, since, as_of])
+    else:  # one row per forecast (one without a median row is never scored: levels_ok)
+        con.execute("CREATE OR REPLACE TEMP TABLE _wanted AS SELECT f.run_id, "
+                    + ", ".join(f"f.{c}" for c in FORECAST_KEY)
+                    + f" {settled} AND abs(f.q_level - 0.5) <= {LEVEL_TOL!r}",
                     [as_of, since, as_of])
     return settle
 
