@@ -30,6 +30,7 @@ import numpy as np
 from scipy import optimize, special
 
 from tallywave.models.base import QuantileForecast, SeriesRandom
+from tallywave.models.damping import damping_ratios
 from tallywave.models.distributions import gamma_delay_pmf
 
 SIGNALS: tuple[str, ...] = ("cases", "admissions", "deaths")
@@ -473,6 +474,7 @@ class CompartmentalModel:
         fraction_knot_days: int = 28,
         drift_sd: float = 0.05,
         damping_days: float | None = None,
+        damping_spread: float = 0.0,
         draw_knots: int = 2,
         n_draws: int = 500,
         optimizer: str = "scoring",
@@ -490,7 +492,9 @@ class CompartmentalModel:
         (7.5, 3.3), deaths (18.5, 7.3).  ``drift_sd`` is the sd per day of the random walk on
         log beta beyond the data (taken in steps of one knot, sd ``drift_sd`` x sqrt(knot
         days)); ``damping_days`` the half-life with which the last knot's R_t relaxes toward 1
-        beyond the data (log beta toward -log(infectious_days x S/N); None: held, as fitted);
+        beyond the data (log beta toward -log(infectious_days x S/N); None: held, as fitted),
+        each draw's half-life log-uniform within ``damping_spread`` doublings of it
+        (:mod:`tallywave.models.damping`);
         ``fraction_drift_sd`` the sd of a fraction's log between knots (0: constant
         fractions).
         """
@@ -512,6 +516,7 @@ class CompartmentalModel:
         self.fraction_knot_days = fraction_knot_days
         self.drift_sd = drift_sd
         self.damping_days = damping_days
+        self.damping_spread = damping_spread
         self.draw_knots = draw_knots
         self.n_draws = n_draws
         self.optimizer = optimizer
@@ -1413,6 +1418,8 @@ class CompartmentalModel:
             raise ValueError(f"horizon must be >= 1, got {horizon}")
         if self.damping_days is not None and not float(self.damping_days) > 0.0:
             raise ValueError(f"damping_days must be > 0 (or None), got {self.damping_days}")
+        if not float(self.damping_spread) >= 0.0:
+            raise ValueError(f"damping_spread must be >= 0, got {self.damping_spread}")
         n_draws = int(self.n_draws if n_draws is None else n_draws)
         lay = self._lay
         n_reg = self.theta_.shape[0]
@@ -1424,7 +1431,10 @@ class CompartmentalModel:
         step_of_day = np.arange(horizon) // lay.knot_days
         last = theta[:, :, lay.n_knots - 1 : lay.n_knots]
         if self.damping_days is not None:  # today's R_t relaxes toward 1 (module notes)
-            phi = 0.5 ** (1.0 / float(self.damping_days))
+            phi: Any = 0.5 ** (1.0 / float(self.damping_days))
+            if self.damping_spread > 0.0:
+                phi = damping_ratios(float(self.damping_days), float(self.damping_spread),
+                                     rnd.uniform((n_draws,)))[..., None]
             level = -np.log(float(self.infectious_days)
                             * np.clip(self.susceptible_, 1e-6, 1.0))[:, None, None]
             last = level + (last - level) * phi ** np.arange(1, horizon + 1)

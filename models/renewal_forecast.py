@@ -9,7 +9,8 @@ measured on simulated outbreaks, ``benchmarks/forecast_eval.py``):
   like h^1.5; ``log_r_sd`` should be estimated from the series' own history of R
   (:func:`estimate_log_r_drift`) rather than typed in.
 * **damping**: today's log R relaxes toward 0 (R toward 1) with half-life ``damping_days``
-  (damped trend, Gardner & McKenzie 1985): an error in today's R then stops compounding after a
+  (damped trend, Gardner & McKenzie 1985; with a ``damping_spread`` each draw has its own
+  half-life, :mod:`tallywave.models.damping`): an error in today's R then stops compounding after a
   few generations instead of growing without bound.  ``None`` switches it off.  The drift's
   steps are changes still to come, so they accumulate undamped (``damp_drift=False``, default):
   damping them too (``damp_drift=True``, an AR(1) on log R) caps the spread of R at
@@ -39,6 +40,7 @@ from typing import Any
 import numpy as np
 
 from tallywave.models.base import QuantileForecast, RandomState, SeriesRandom
+from tallywave.models.damping import damping_ratios
 from tallywave.models.deconvolution import weekly_lags
 from tallywave.models.renewal import (
     CoriEstimator,
@@ -222,7 +224,9 @@ class RenewalForecaster:
 
     Parameters: ``horizon`` (days), ``log_r_sd`` (random-walk sd of log R per day),
     ``damping_days`` (half-life of today's log R toward 0, None = none), ``damp_drift`` (damp
-    the random walk's steps too: an AR(1) on log R), ``dispersion`` (negative-binomial size, a
+    the random walk's steps too: an AR(1) on log R), ``damping_spread`` (doublings either side
+    of ``damping_days`` over which each draw's half-life is log-uniform, :mod:`~tallywave.models.
+    damping`; 0 = one half-life), ``dispersion`` (negative-binomial size, a
     number or None for Poisson; ``fit`` may override it per series), ``random_state``.
     """
 
@@ -233,6 +237,7 @@ class RenewalForecaster:
         log_r_sd: float = 0.0,
         damping_days: float | None = None,
         damp_drift: bool = False,
+        damping_spread: float = 0.0,
         dispersion: float | None = None,
         random_state: RandomState = None,
     ) -> None:
@@ -240,6 +245,7 @@ class RenewalForecaster:
         self.log_r_sd = log_r_sd
         self.damping_days = damping_days
         self.damp_drift = damp_drift
+        self.damping_spread = damping_spread
         self.dispersion = dispersion
         self.random_state = random_state
 
@@ -259,6 +265,8 @@ class RenewalForecaster:
             raise ValueError("log_r_sd must be >= 0")
         if self.damping_days is not None and not self.damping_days > 0.0:
             raise ValueError("damping_days must be > 0 (or None)")
+        if not self.damping_spread >= 0.0:
+            raise ValueError("damping_spread must be >= 0")
         w = resolve_interval(interval_pmf)
         hist = _as_incidence(incidence, 3, "incidence")
         r = np.asarray(r_samples, dtype=float)
@@ -307,9 +315,15 @@ class RenewalForecaster:
         steps = np.zeros((n_draws, n_series, h_max))
         if self.log_r_sd > 0.0:
             steps = np.moveaxis(rnd.normal((n_draws, h_max)), 0, 1) * float(self.log_r_sd)
-        phi = 1.0 if self.damping_days is None else 0.5 ** (1.0 / float(self.damping_days))
+        # daily damping ratio, one per draw and series (a mixture over half-lives with a spread)
+        phi = np.full((n_draws, n_series),
+                      1.0 if self.damping_days is None else 0.5 ** (1.0 / float(self.damping_days)))
+        if self.damping_days is not None and self.damping_spread > 0.0:
+            phi = damping_ratios(float(self.damping_days), float(self.damping_spread),
+                                 np.moveaxis(rnd.uniform((n_draws,)), 0, 1))
         if not self.damp_drift:
-            return log_r0[..., None] * phi ** np.arange(1, h_max + 1) + np.cumsum(steps, axis=-1)
+            return (log_r0[..., None] * phi[..., None] ** np.arange(1, h_max + 1)
+                    + np.cumsum(steps, axis=-1))
         out = np.empty((n_draws, n_series, h_max))
         cur = log_r0
         for h in range(h_max):  # AR(1) on log R (a random walk when phi = 1)

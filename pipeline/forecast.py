@@ -151,6 +151,7 @@ def _renewal_job(args: tuple) -> dict[str, Any]:
     damping = float(cfg["renewal_damping_days"])
     fc = RenewalForecaster(horizon=int(cfg["horizon_days"]), log_r_sd=drift,
                            damping_days=damping if damping > 0 else None,
+                           damping_spread=float(cfg["renewal_damping_spread"]),
                            random_state=[np.random.SeedSequence(s.entropy,
                                                                 spawn_key=(*s.spawn_key, 1))
                                          for s in seeds])
@@ -189,6 +190,7 @@ def _compartmental_job(args: tuple) -> dict[str, Any]:
         fraction_prior_sd=dict(cfg["fraction_prior_sd"]),
         fraction_drift_sd=float(cfg["fraction_drift_sd"]), drift_sd=drift,
         damping_days=float(cfg["compartmental_damping_days"]) or None,
+        damping_spread=float(cfg["compartmental_damping_spread"]),
         n_draws=int(cfg["forecast_draws"]), q_levels=cfg["quantiles"], random_state=seeds)
     model.fit(observed, population, init=init, prior_counts=prior, immune=immune)
     h = int(cfg["horizon_days"])
@@ -512,6 +514,8 @@ def _renewal_fits(run: _Run, signal: str, block: SeriesBlock, parts: list[slice]
             params = {"r_source": src, "r_median": float(med),
                       "dispersion": float(dispersion[s][j]), "log_r_drift_sd": drift,
                       "damping_days": float(run.settings.get("renewal_damping_days", signal)),
+                      "damping_spread": float(run.settings.get("renewal_damping_spread",
+                                                               signal)),
                       "depletion_capacity": cap if np.isfinite(cap) else None}
             rows.append((region, json.dumps(params), src != "none", msgs[src]))
     if rows:

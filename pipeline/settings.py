@@ -122,6 +122,10 @@ SPEC: dict[str, Setting] = {
     "renewal_damping_days": Setting(7.0, "renewal projection: half-life with which today's "
                                     "log R_t relaxes toward 0 (R toward 1) beyond the data (the "
                                     "drift's random walk is not damped); 0 = no damping"),
+    "renewal_damping_spread": Setting(5.0, "renewal projection: each draw's half-life is "
+                                      "log-uniform over this many doublings either side of "
+                                      "`renewal_damping_days` (how long today's R_t lasts is "
+                                      "unknown); 0 = that half-life for every draw"),
     "renewal_depletion": Setting(True, "renewal projection: deplete susceptibles, with the pool "
                                  "and the signal's reporting fraction from the compartmental fit"),
     "latent_days": Setting(3.0, "compartmental model: mean latent period (days)"),
@@ -140,6 +144,10 @@ SPEC: dict[str, Setting] = {
     "compartmental_damping_days": Setting(14.0, "compartmental model: half-life with which the "
                                           "last fitted R_t relaxes toward 1 beyond the data; "
                                           "0 = held at its fitted value"),
+    "compartmental_damping_spread": Setting(5.0, "compartmental model: each draw's half-life "
+                                            "is log-uniform over this many doublings either "
+                                            "side of `compartmental_damping_days`; 0 = that "
+                                            "half-life for every draw"),
     "ode_method": Setting("rk4", "compartmental model stepping", ("rk4", "euler")),
     "ode_steps_per_day": Setting(1, "compartmental model: steps per day"),
     "immune_fraction": Setting(0.0, "share of every region's population immune before the "

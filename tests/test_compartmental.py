@@ -502,6 +502,35 @@ def test_damping_relaxes_the_last_knot_toward_r_one(fitted: tuple) -> None:
         _model(damping_days=0.0).fit({"cases": np.ones((1, 112))}, [1e6]).sample_forecast(7)
 
 
+def test_damping_spread_keeps_the_median_and_widens_the_path(fitted: tuple) -> None:
+    # with damping_spread each draw's last-knot R_t relaxes with its own half-life,
+    # log-uniform over 2 doublings either side of 7 days (models/damping.py): with no drift
+    # the median departure from R = 1 is the 7-day damped trend, and the spread grows with h
+    import copy
+
+    fixed = copy.copy(fitted[0])
+    fixed.drift_sd = 0.0
+    fixed.damping_days = 7.0
+    mixed = copy.copy(fixed)
+    mixed.damping_spread = 2.0
+    fixed.sample_forecast(28, n_draws=400)
+    mixed.sample_forecast(28, n_draws=400)
+    shift = np.log(INF * fixed.susceptible_)[:, None, None]
+    dev_fixed = fixed.future_log_beta_ + shift  # log R_t beyond the data, per draw
+    dev_mixed = mixed.future_log_beta_ + shift
+    # the same parameter draws (taken before the half-lives), so draw by draw the ratio of the
+    # two departures at day h is (phi_draw / phi_7)^h; its median over draws is 1
+    ratio = dev_mixed[..., 27] / dev_fixed[..., 27]
+    assert np.median(ratio) == pytest.approx(1.0, abs=0.1)
+    lo, hi = np.quantile(ratio, [0.05, 0.95])
+    phi7 = 0.5 ** (1 / 7)
+    assert lo == pytest.approx((0.5 ** (1 / (7 * 2 ** -1.8)) / phi7) ** 28, rel=0.3)
+    assert hi == pytest.approx((0.5 ** (1 / (7 * 2 ** 1.8)) / phi7) ** 28, rel=0.3)
+    with pytest.raises(ValueError, match="damping_spread"):
+        _model(damping_days=7.0, damping_spread=-1.0).fit(
+            {"cases": np.ones((1, 112))}, [1e6]).sample_forecast(7)
+
+
 def test_forecast_protocol_streams_and_scenarios(truth: dict) -> None:
     from tallywave.models.base import series_seeds
 

@@ -115,6 +115,41 @@ def test_damping_of_today_and_undamped_drift_closed_forms() -> None:
     assert sd[-1] < 0.6 * log_r.std(axis=0)[-1]  # the AR(1) caps the spread
 
 
+def test_damping_spread_mixes_half_lives_closed_forms() -> None:
+    # each draw's half-life is L = 7 x 2^(2(2u - 1)), u uniform (models/damping.py): log R_{T+h}
+    # = phi(u)^h log R_T.  phi(u)^h is monotone in u, so the quantiles of log R_{T+h} are exact
+    # (the median is the 7-day damped trend itself), and its mean is the integral of phi(u)^h
+    # over u (reference: scipy.integrate.quad)
+    from scipy import integrate
+
+    from tallywave.models.damping import damping_ratios
+
+    hist = np.full((1, 30), 100.0)
+    r0, half, spread = 1.5, 7.0, 2.0
+    fc = RenewalForecaster(horizon=28, damping_days=half, damping_spread=spread, random_state=5)
+    fc.fit(hist, PMF, np.full((20000, 1), r0)).sample()
+    log_r = np.log(fc.r_paths_[:, 0])
+    for h in (7, 14, 28):
+        mean = integrate.quad(lambda u, h=h: damping_ratios(half, spread, u) ** h, 0.0, 1.0)[0]
+        assert log_r[:, h - 1].mean() == pytest.approx(np.log(r0) * mean, rel=0.01)
+        for p in (0.05, 0.5, 0.95):  # larger u: longer half-life, higher R
+            exact = np.log(r0) * damping_ratios(half, spread, p) ** h
+            assert np.mean(log_r[:, h - 1] <= exact) == pytest.approx(p, abs=0.006)
+    assert damping_ratios(half, spread, 0.5) == pytest.approx(0.5 ** (1 / half), rel=1e-15)
+    np.testing.assert_allclose(damping_ratios(half, spread, np.array([0.0, 1.0])),
+                               0.5 ** (1 / np.array([half / 4, half * 4])), rtol=1e-15)
+    # spread 0 is the single half-life, draw for draw (no extra random numbers taken)
+    one = RenewalForecaster(horizon=28, log_r_sd=0.03, damping_days=half, random_state=5)
+    zero = RenewalForecaster(horizon=28, log_r_sd=0.03, damping_days=half, damping_spread=0.0,
+                             random_state=5)
+    r = np.full((200, 1), r0)
+    np.testing.assert_array_equal(one.fit(hist, PMF, r).sample(), zero.fit(hist, PMF, r).sample())
+    with pytest.raises(ValueError, match="spread"):
+        damping_ratios(half, -1.0, 0.5)
+    with pytest.raises(ValueError, match="damping_spread"):
+        RenewalForecaster(damping_days=7.0, damping_spread=-1.0).fit(hist, PMF, r)
+
+
 def test_depletion_reaches_the_kermack_mckendrick_final_size() -> None:
     # a small seed in a large pool: with R scaled by the share of the pool left, the cumulative
     # projection approaches the final size z = 1 + W(-R0 e^-R0) / R0 (Kermack & McKendrick
