@@ -11,6 +11,7 @@ infections' total infectiousness).
 
     python -m benchmarks.weekly_scenario                   # README figures (24 regions, 6 runs)
     python -m benchmarks.weekly_scenario --regions 12 --scenario long_tail
+    python -m benchmarks.weekly_scenario --settings S.toml  # the same with other settings
 
 Figures per scenario: 90 % / 50 % coverage of the nowcast of the last weeks against the eventual
 counts and its median log bias (against: the counts reported on as_of); R_t 90 % coverage and
@@ -229,13 +230,15 @@ def main(argv: list[str] | None = None) -> None:  # pragma: no cover - prints RE
     from tallywave.pipeline import store
     from tallywave.pipeline.ingest import ingest_spec
     from tallywave.pipeline.run import execute_run
-    from tallywave.pipeline.settings import Settings
+    from tallywave.pipeline.settings import load_settings
 
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--regions", type=int, default=24)
     ap.add_argument("--runs", type=int, default=6)
     ap.add_argument("--scenario", action="append", choices=list(SCENARIOS))
+    ap.add_argument("--settings", default=None, help="settings TOML (default: the defaults)")
     args = ap.parse_args(argv)
+    settings = load_settings(args.settings)
     rows = []
     for name in args.scenario or ["default", "delay_lengthens", "long_tail"]:
         t0 = time.perf_counter()
@@ -246,7 +249,7 @@ def main(argv: list[str] | None = None) -> None:  # pragma: no cover - prints RE
             run_ids = {}
             # every other week, the last one four weeks before the end (forecasts are scored)
             for d in world.as_of[:-4][::-2][: args.runs][::-1]:
-                run_ids[d] = execute_run(con, d, Settings(), score_after=False)["run_id"]
+                run_ids[d] = execute_run(con, d, settings, score_after=False)["run_id"]
             got = evaluate(con, world, run_ids)
         rows.append({"scenario": name, **got, "seconds": round(time.perf_counter() - t0, 1)})
     print("| scenario | nowcast cells | nowcast 90% / 50% coverage | nowcast log bias (reported "

@@ -471,21 +471,26 @@ def test_forecast_draws_continue_the_fitted_path(fitted: tuple) -> None:
     np.testing.assert_allclose(cont, whole, rtol=1e-9)
 
 
+def _log_r_beyond(model: CompartmentalModel, horizon: int, n_draws: int,
+                  **changes: float) -> tuple[CompartmentalModel, np.ndarray]:
+    """A copy of a fitted model with no drift and ``changes``, and its log R_t per draw beyond
+    the data: log(beta x infectious days x S/N) of ``future_log_beta_`` (regions, draws, days)."""
+    import copy
+
+    m = copy.copy(model)
+    m.drift_sd = 0.0
+    for key, value in changes.items():
+        setattr(m, key, value)
+    m.sample_forecast(horizon, n_draws=n_draws)
+    return m, m.future_log_beta_ + np.log(INF * m.susceptible_)[:, None, None]
+
+
 def test_damping_relaxes_the_last_knot_toward_r_one(fitted: tuple) -> None:
     # damped trend beyond the data (Gardner & McKenzie 1985): with no drift the log R_t implied
     # by the future beta at today's susceptible share, log(beta x infectious days x S/N),
     # halves every damping_days; without damping it stays at the last knot's value
-    import copy
-
-    base = copy.copy(fitted[0])
-    base.drift_sd = 0.0
-    held = copy.copy(base)
-    base.damping_days = 7.0
-    base.sample_forecast(21, n_draws=50)
-    held.sample_forecast(21, n_draws=50)
-    shift = np.log(INF * base.susceptible_)[:, None, None]
-    log_r = base.future_log_beta_ + shift
-    log_r_held = held.future_log_beta_ + shift
+    base, log_r = _log_r_beyond(fitted[0], 21, 50, damping_days=7.0)
+    held, log_r_held = _log_r_beyond(fitted[0], 21, 50)
     np.testing.assert_allclose(log_r_held[..., -1], log_r_held[..., 0], rtol=1e-12)
     # day h of the forecast is h steps after the last knot: phi^h with phi = 0.5^(1/7)
     start = log_r_held[..., 0]
@@ -506,18 +511,8 @@ def test_damping_spread_keeps_the_median_and_widens_the_path(fitted: tuple) -> N
     # with damping_spread each draw's last-knot R_t relaxes with its own half-life,
     # log-uniform over 2 doublings either side of 7 days (models/damping.py): with no drift
     # the median departure from R = 1 is the 7-day damped trend, and the spread grows with h
-    import copy
-
-    fixed = copy.copy(fitted[0])
-    fixed.drift_sd = 0.0
-    fixed.damping_days = 7.0
-    mixed = copy.copy(fixed)
-    mixed.damping_spread = 2.0
-    fixed.sample_forecast(28, n_draws=400)
-    mixed.sample_forecast(28, n_draws=400)
-    shift = np.log(INF * fixed.susceptible_)[:, None, None]
-    dev_fixed = fixed.future_log_beta_ + shift  # log R_t beyond the data, per draw
-    dev_mixed = mixed.future_log_beta_ + shift
+    _, dev_fixed = _log_r_beyond(fitted[0], 28, 400, damping_days=7.0)
+    _, dev_mixed = _log_r_beyond(fitted[0], 28, 400, damping_days=7.0, damping_spread=2.0)
     # the same parameter draws (taken before the half-lives), so draw by draw the ratio of the
     # two departures at day h is (phi_draw / phi_7)^h; its median over draws is 1
     ratio = dev_mixed[..., 27] / dev_fixed[..., 27]
